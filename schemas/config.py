@@ -1,0 +1,281 @@
+"""Study configuration (TOML), validated by pydantic.
+
+Load with :func:`load_config` (a path) or :func:`parse_config` (a dict);
+both raise :class:`ConfigError` whose message names the field, the bad
+value and what is accepted, and suggests the nearest valid key for a
+mistyped one.  ``StudyConfig()`` with no arguments is the default study:
+two arms, designed treatment share 0.5, individual randomisation, the
+default alert thresholds.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import tomllib
+from pathlib import Path
+from typing import Any, Literal, Optional
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from schemas.records import ARMS
+
+__all__ = [
+    "ConfigError", "StudyConfig", "OutcomeSpec", "SiteSpec", "FollowUp", "AlertThresholds",
+    "EstimationSettings", "TrendSettings", "ScheduleSettings", "ExecutionSettings",
+    "load_config", "parse_config", "nearest_name",
+]
+
+
+class ConfigError(ValueError):
+    """An invalid study configuration (the CLI exits with code 2)."""
+
+
+class _Cfg(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+def _check_allocation(value: dict[str, float] | None) -> dict[str, float] | None:
+    if value is None:
+        return None
+    unknown = [k for k in value if k not in ARMS]
+    if unknown:
+        raise ValueError(f"unknown arm {unknown[0]!r}; accepted arms: {', '.join(ARMS)}")
+    missing = [a for a in ARMS if a not in value]
+    if missing:
+        raise ValueError(f"allocation must give a share for every arm; missing {', '.join(missing)}")
+    if any(not (0.0 < v < 1.0) for v in value.values()):
+        raise ValueError("each arm's designed share must lie strictly between 0 and 1")
+    if abs(sum(value.values()) - 1.0) > 1e-9:
+        raise ValueError(f"designed shares must add up to 1 (they add up to {sum(value.values()):g})")
+    return dict(value)
+
+
+class OutcomeSpec(_Cfg):
+    """One outcome measured on participants."""
+
+    name: str = Field(min_length=1, pattern=r"^[A-Za-z][A-Za-z0-9_]*$",
+                      description="Outcome name as it appears in outcome files.")
+    primary: bool = Field(default=False, description="Primary outcome (alerts and pooled headline use it).")
+    unit: str = Field(default="", description="Unit of measurement, for labels.")
+    direction: Literal["higher_is_better", "lower_is_better", "neutral"] = Field(
+        default="higher_is_better", description="Which direction is an improvement.")
+
+
+class SiteSpec(_Cfg):
+    """One site of the registry."""
+
+    site_id: str = Field(min_length=1, max_length=200)
+    name: str = Field(default="", description="Display name.")
+    group: Optional[str] = Field(default=None, description="Site group, such as a region (for subgroup pooling).")
+    allocation: Optional[dict[str, float]] = Field(default=None, description="Designed arm shares for this site.")
+
+    _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
+
+
+class FollowUp(_Cfg):
+    """Which outcome measurement counts: days after assignment, inclusive."""
+
+    min_days: int = Field(default=0, ge=0)
+    max_days: int = Field(default=365, ge=0)
+    rule: Literal["last", "first", "mean"] = Field(
+        default="last", description="When a participant has several measurements in the window: "
+                                    "the last one (default), the first one, or their mean.")
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "FollowUp":
+        if self.max_days < self.min_days:
+            raise ValueError(f"max_days ({self.max_days}) must not be below min_days ({self.min_days})")
+        return self
+
+
+class AlertThresholds(_Cfg):
+    """Alert thresholds; each default's source is in the README's alert section."""
+
+    weak_first_stage_f: float = Field(default=10.0, gt=0, description="Staiger & Stock (1997) rule of thumb.")
+    tf_valid_f: float = Field(default=104.7, gt=0, description="Lee et al. (2022): F above which t-ratio 5% tests are valid.")
+    negative_first_stage_min_f: float = Field(default=3.8416, ge=0)
+    first_stage_decline_periods: int = Field(default=4, ge=1, description="Recent assignment periods compared with earlier ones.")
+    drift_baseline_periods: int = Field(default=4, ge=1, description="Periods whose uptake sets the in-control level.")
+    drift_odds_ratio: float = Field(default=3.0, gt=1.0, description="Shift in the odds of uptake the CUSUM is tuned to detect.")
+    drift_arl0: float = Field(default=2000.0, gt=10.0, description="In-control average run length, in participants.")
+    srm_p_value: float = Field(default=0.001, gt=0, lt=1, description="Sample-ratio mismatch alarm level (common practice).")
+    fdr_q: float = Field(default=0.05, gt=0, lt=1, description="Benjamini-Hochberg false discovery rate across sites.")
+    test_alpha: float = Field(default=0.05, gt=0, lt=1, description="Nominal level of the per-site tests before BH.")
+    stale_days: int = Field(default=14, ge=1, description="Days without a batch before a site is stale.")
+    outlier_std_residual: float = Field(default=3.0, gt=0, description="|standardised residual| above which a site is an outlier.")
+    min_arm_size: int = Field(default=2, ge=1)
+
+
+class EstimationSettings(_Cfg):
+    level: float = Field(default=0.95, gt=0.5, lt=1.0, description="Confidence level of intervals.")
+    pool_min_first_stage_f: float = Field(default=10.0, ge=0, description="A site enters the CACE pool only above this first-stage F.")
+    adjust_covariates: bool = Field(default=False, description="Also fit the covariate-adjusted IV per site.")
+    pool_methods: tuple[Literal["fixed", "dl", "reml", "pm"], ...] = ("fixed", "dl", "reml", "pm")
+
+
+class TrendSettings(_Cfg):
+    period_days: int = Field(default=7, ge=1, le=366, description="Length of a trend period in days (7 = weekly).")
+
+
+class ScheduleSettings(_Cfg):
+    cron: str = Field(default="0 6 * * 1", description="When `takeup serve` runs the monitoring flow (cron syntax).")
+    timezone: str = Field(default="UTC")
+
+
+class ExecutionSettings(_Cfg):
+    runner: Literal["local", "dask"] = "local"
+    dask_address: Optional[str] = Field(default=None, description="tcp://HOST:PORT of an existing Dask scheduler.")
+
+
+class StudyConfig(_Cfg):
+    """The whole study configuration."""
+
+    study_id: str = Field(default="study", min_length=1)
+    randomisation_unit: Literal["individual", "cluster"] = "individual"
+    uptake_definition: Literal["ever_by_cutoff"] = Field(
+        default="ever_by_cutoff", description="Uptake = took up at least once on or before the cutoff.")
+    allocation: dict[str, float] = Field(default_factory=lambda: {"treatment": 0.5, "control": 0.5})
+    outcomes: tuple[OutcomeSpec, ...] = ()
+    follow_up: FollowUp = FollowUp()
+    covariates: tuple[str, ...] = ()
+    sites: tuple[SiteSpec, ...] = ()
+    alerts: AlertThresholds = AlertThresholds()
+    estimation: EstimationSettings = EstimationSettings()
+    trends: TrendSettings = TrendSettings()
+    schedule: ScheduleSettings = ScheduleSettings()
+    execution: ExecutionSettings = ExecutionSettings()
+
+    _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
+
+    @field_validator("covariates")
+    @classmethod
+    def _covariate_names(cls, v: tuple[str, ...]) -> tuple[str, ...]:
+        from schemas.records import AssignmentInput
+        reserved = set(AssignmentInput.model_fields)
+        for name in v:
+            if not name.isidentifier():
+                raise ValueError(f"covariate name {name!r} is not a plain identifier")
+            if name in reserved:
+                raise ValueError(f"covariate name {name!r} clashes with an assignment field")
+        if len(set(v)) != len(v):
+            raise ValueError("covariate names must be unique")
+        return v
+
+    @model_validator(mode="after")
+    def _consistent(self) -> "StudyConfig":
+        names = [o.name for o in self.outcomes]
+        if len(set(names)) != len(names):
+            raise ValueError("outcome names must be unique")
+        if sum(o.primary for o in self.outcomes) > 1:
+            raise ValueError("at most one outcome may be primary")
+        ids = [s.site_id for s in self.sites]
+        if len(set(ids)) != len(ids):
+            dup = next(i for i in ids if ids.count(i) > 1)
+            raise ValueError(f"site {dup!r} appears twice in the registry")
+        return self
+
+    # ----------------------------------------------------------------- helpers
+    @property
+    def primary_outcome(self) -> Optional[str]:
+        for o in self.outcomes:
+            if o.primary:
+                return o.name
+        return self.outcomes[0].name if self.outcomes else None
+
+    def treatment_share(self, site_id: str) -> float:
+        for s in self.sites:
+            if s.site_id == site_id and s.allocation is not None:
+                return s.allocation["treatment"]
+        return self.allocation["treatment"]
+
+    def site_group(self, site_id: str) -> Optional[str]:
+        for s in self.sites:
+            if s.site_id == site_id:
+                return s.group
+        return None
+
+    def canonical_json(self) -> str:
+        return json.dumps(self.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+
+    def config_hash(self) -> str:
+        return hashlib.sha256(self.canonical_json().encode()).hexdigest()
+
+
+# ---------------------------------------------------------------------------
+def nearest_name(name: str, candidates: list[str] | tuple[str, ...]) -> Optional[str]:
+    """Closest valid name to a mistyped ``name`` (None when nothing is close)."""
+    match = difflib.get_close_matches(name, list(candidates), n=1, cutoff=0.6)
+    return match[0] if match else None
+
+
+def _model_at(loc: tuple[Any, ...]) -> Optional[type[BaseModel]]:
+    """The model whose field list applies at ``loc`` (for suggestions)."""
+    model: Any = StudyConfig
+    for part in loc:
+        if isinstance(part, int):
+            continue
+        if not (isinstance(model, type) and issubclass(model, BaseModel)):
+            return None
+        field = model.model_fields.get(part)
+        if field is None:
+            return None
+        ann = field.annotation
+        candidates = [ann, *getattr(ann, "__args__", ())]
+        nxt = None
+        for c in candidates:
+            for cc in [c, *getattr(c, "__args__", ())]:
+                if isinstance(cc, type) and issubclass(cc, BaseModel):
+                    nxt = cc
+        model = nxt
+    return model if isinstance(model, type) and issubclass(model, BaseModel) else None
+
+
+def _format_errors(err: ValidationError, source: str) -> str:
+    lines = [f"invalid study configuration in {source}:"]
+    for e in err.errors():
+        loc = tuple(e["loc"])
+        where = ".".join(str(p) if not isinstance(p, int) else f"[{p}]" for p in loc).replace(".[", "[") or "(top level)"
+        value = e.get("input")
+        if e["type"] == "extra_forbidden":
+            parent = _model_at(loc[:-1])
+            valid = sorted(parent.model_fields) if parent else []
+            hint = nearest_name(str(loc[-1]), valid)
+            msg = f"  {where}: unknown key"
+            if hint:
+                msg += f"; did you mean '{hint}'?"
+            if valid:
+                msg += f" (accepted keys: {', '.join(valid)})"
+            lines.append(msg)
+            continue
+        text = e["msg"].removeprefix("Value error, ")
+        shown = repr(value)
+        if len(shown) > 120:
+            shown = shown[:117] + "..."
+        lines.append(f"  {where}: {text} (got {shown})")
+    return "\n".join(lines)
+
+
+def parse_config(data: dict[str, Any], source: str = "<config>") -> StudyConfig:
+    """Validate a config mapping; raise :class:`ConfigError` with a readable message."""
+    try:
+        return StudyConfig.model_validate(data)
+    except ValidationError as err:
+        raise ConfigError(_format_errors(err, source)) from None
+
+
+def load_config(path: str | Path | None) -> StudyConfig:
+    """Load a TOML study configuration; ``None`` gives the default study."""
+    if path is None:
+        return StudyConfig()
+    p = Path(path)
+    try:
+        raw = p.read_bytes()
+    except OSError as exc:
+        raise ConfigError(f"cannot read study configuration {p}: {exc.strerror}") from None
+    try:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise ConfigError(f"study configuration {p} is not valid TOML: {exc}") from None
+    return parse_config(data, str(p))

@@ -1,0 +1,206 @@
+"""Record contracts: what sites send, and what the warehouse stores.
+
+These pydantic models are the single source of truth for the record
+fields.  The warehouse DDL (:mod:`schemas.ddl`) and the vectorised row
+checks run at ingestion (:mod:`pipeline.row_checks`) are both generated
+from the annotations and the ``json_schema_extra`` markers below, so a
+field is declared exactly once.
+
+Markers understood by the generators (``Field(json_schema_extra=...)``):
+
+``identifier``
+    The raw value is pseudonymised at ingestion and never stored; the
+    stored model carries ``participant_key`` instead.
+``not_future``
+    A date that may not lie after the ingestion date.
+``true_tokens`` / ``false_tokens``
+    Accepted spellings of a boolean (compared case-insensitively).
+``registry``
+    The value must be a site of the study's site registry (when the
+    registry is not empty).
+``declared``
+    The value must be one of the names declared in the study config
+    (``"outcomes"``).
+"""
+
+from __future__ import annotations
+
+from datetime import date, datetime
+from typing import Literal, Optional
+
+from pydantic import BaseModel, ConfigDict, Field
+
+__all__ = [
+    "RecordKind", "RECORD_KINDS", "ARMS",
+    "AssignmentInput", "UptakeInput", "OutcomeInput",
+    "AssignmentRow", "AssignmentCovariateRow", "UptakeRow", "OutcomeRow",
+    "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow",
+    "INPUT_MODELS", "STORED_MODELS", "STORAGE_TABLES",
+]
+
+RecordKind = Literal["assignment", "uptake", "outcome"]
+RECORD_KINDS: tuple[str, ...] = ("assignment", "uptake", "outcome")
+ARMS: tuple[str, ...] = ("treatment", "control")
+
+_TRUE = ("1", "true", "yes", "y", "t")
+_FALSE = ("0", "false", "no", "n", "f")
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+# --------------------------------------------------------------------------
+# Fields shared between what a site sends and what is stored
+# --------------------------------------------------------------------------
+class _SiteField(_Strict):
+    site_id: str = Field(min_length=1, max_length=200, description="Site identifier as in the study's site registry.",
+                         json_schema_extra={"registry": True})
+
+
+class _AssignmentFields(_SiteField):
+    arm: Literal["treatment", "control"] = Field(description="Randomised arm: `treatment` (offered) or `control`.")
+    assigned_on: date = Field(description="Date of the lottery / assignment (ISO 8601).",
+                              json_schema_extra={"not_future": True})
+    cluster_id: Optional[str] = Field(default=None, max_length=200,
+                                      description="Randomisation cluster (required when randomisation is by cluster).")
+    stratum: Optional[str] = Field(default=None, max_length=200, description="Randomisation stratum, if any.")
+
+
+class _UptakeFields(_SiteField):
+    observed_on: date = Field(description="Date the uptake status was observed (ISO 8601).",
+                              json_schema_extra={"not_future": True})
+    took_up: bool = Field(description="Whether the participant had taken up the offer by `observed_on` "
+                                      "(1/0, true/false, yes/no).",
+                          json_schema_extra={"true_tokens": _TRUE, "false_tokens": _FALSE})
+
+
+class _OutcomeFields(_SiteField):
+    outcome: str = Field(min_length=1, max_length=200, description="Outcome name as declared in the study config.",
+                         json_schema_extra={"declared": "outcomes"})
+    measured_on: date = Field(description="Date of measurement (ISO 8601).", json_schema_extra={"not_future": True})
+    value: float = Field(description="Measured value (finite number).")
+
+
+class _RawId(_Strict):
+    participant_id: str = Field(min_length=1, max_length=200,
+                                description="Participant identifier at the site; pseudonymised on arrival.",
+                                json_schema_extra={"identifier": True})
+
+
+# --------------------------------------------------------------------------
+# Input records (one CSV / Parquet row each)
+# --------------------------------------------------------------------------
+class AssignmentInput(_AssignmentFields, _RawId):
+    """One row of an assignment file. Extra columns named as declared covariates are allowed."""
+
+
+class UptakeInput(_UptakeFields, _RawId):
+    """One row of an uptake file."""
+
+
+class OutcomeInput(_OutcomeFields, _RawId):
+    """One row of an outcome file."""
+
+
+INPUT_MODELS: dict[str, type[_Strict]] = {
+    "assignment": AssignmentInput,
+    "uptake": UptakeInput,
+    "outcome": OutcomeInput,
+}
+
+
+# --------------------------------------------------------------------------
+# Stored rows (warehouse tables)
+# --------------------------------------------------------------------------
+class _Provenance(_Strict):
+    batch_id: str = Field(description="Batch (file) the row arrived in; see `batches`.")
+    source_row: int = Field(description="Row of the source file (CSV: physical line, header = 1; Parquet: 1-based row).")
+    participant_key: str = Field(description="HMAC-SHA256 pseudonym of (site_id, participant_id), hex.")
+
+
+class AssignmentRow(_AssignmentFields, _Provenance):
+    """Table `assignments`: one row per (site, participant)."""
+
+
+class AssignmentCovariateRow(_Strict):
+    """Table `assignment_covariates`: declared covariates of assigned participants, long format."""
+
+    batch_id: str = Field(description="Batch the covariate arrived in.")
+    site_id: str = Field(description="Site identifier.")
+    participant_key: str = Field(description="Participant pseudonym.")
+    covariate: str = Field(description="Covariate name as declared in the study config.")
+    value: Optional[float] = Field(default=None, description="Covariate value (null when not reported).")
+
+
+class UptakeRow(_UptakeFields, _Provenance):
+    """Table `uptake_events`: uptake observations (several per participant over time)."""
+
+
+class OutcomeRow(_OutcomeFields, _Provenance):
+    """Table `outcome_measurements`: outcome measurements."""
+
+
+class BatchRow(_Strict):
+    """Table `batches`: one row per file offered for ingestion."""
+
+    batch_id: str = Field(description="Batch identifier (derived from the content hash and receipt time).")
+    file_name: str = Field(description="File name as received (base name).")
+    sha256: str = Field(description="SHA-256 of the file content, hex.")
+    kind: Optional[str] = Field(default=None, description="Record kind: assignment, uptake or outcome.")
+    site_ids: Optional[str] = Field(default=None, description="Comma-separated sites present among the loaded rows.")
+    received_at: datetime = Field(description="When the file was ingested (UTC).")
+    rows_read: int = Field(description="Data rows read from the file.")
+    rows_loaded: int = Field(description="Rows stored in the record tables.")
+    rows_quarantined: int = Field(description="Rows sent to `quarantine`.")
+    rows_duplicate: int = Field(description="Rows dropped as exact duplicates (in the file or already stored).")
+    status: Literal["loaded", "rejected"] = Field(description="`loaded`, or `rejected` when the file could not be read.")
+    message: Optional[str] = Field(default=None, description="Why a file was rejected.")
+
+
+class QuarantineRow(_Strict):
+    """Table `quarantine`: one row per failed check of a rejected record (raw identifiers are never copied)."""
+
+    batch_id: str = Field(description="Batch of the rejected row.")
+    source_file: str = Field(description="File name of the batch.")
+    source_row: Optional[int] = Field(default=None, description="Row in the source file (see `source_row` above).")
+    field: Optional[str] = Field(default=None, description="Field that failed, if one field is to blame.")
+    reason: str = Field(description="Machine-readable reason code (see README).")
+    offending_value: Optional[str] = Field(default=None, description="The rejected value (never an identifier).")
+
+
+class StudyConfigRow(_Strict):
+    """Table `study_configs`: every study configuration the warehouse has been given."""
+
+    config_hash: str = Field(description="SHA-256 of the canonical JSON of the configuration.")
+    stored_at: datetime = Field(description="When the configuration was stored (UTC).")
+    config_json: str = Field(description="The validated configuration as JSON.")
+
+
+class WarehouseMetaRow(_Strict):
+    """Table `warehouse_meta`: key/value facts about the warehouse (schema version, key fingerprint)."""
+
+    key: str = Field(description="Fact name.")
+    value: str = Field(description="Fact value.")
+
+
+STORED_MODELS: dict[str, type[_Strict]] = {
+    "assignment": AssignmentRow,
+    "uptake": UptakeRow,
+    "outcome": OutcomeRow,
+}
+
+#: table name -> model, in creation order
+STORAGE_TABLES: dict[str, type[_Strict]] = {
+    "warehouse_meta": WarehouseMetaRow,
+    "study_configs": StudyConfigRow,
+    "batches": BatchRow,
+    "quarantine": QuarantineRow,
+    "assignments": AssignmentRow,
+    "assignment_covariates": AssignmentCovariateRow,
+    "uptake_events": UptakeRow,
+    "outcome_measurements": OutcomeRow,
+}
+
+#: record kind -> table name
+KIND_TABLE: dict[str, str] = {"assignment": "assignments", "uptake": "uptake_events", "outcome": "outcome_measurements"}
