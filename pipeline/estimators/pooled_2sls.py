@@ -184,7 +184,9 @@ def pooled_2sls(m: SiteMoments, level: float = 0.95) -> Pooled2SLS:
     saturated design the two coincide.  It is *not* Sargan's or Basmann's
     statistic, which assume homoskedastic errors.  J is undefined (NaN, with a note) with fewer
     than two sites or when a cell has a zero residual sum of squares (the
-    moment covariance is then singular).
+    moment covariance is then singular).  Cell residual sums of squares are
+    computed from raw sums, so one below ``1e-12`` times the raw sums of
+    squares of its cell is rounding noise and is set to zero (exact fit).
 
     References
     ----------
