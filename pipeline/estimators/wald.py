@@ -395,7 +395,8 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
 
         const_y = both_arms & ~no_se & ~(v_g > _ZERO_RTOL * scale_g)
         fixed_d = both_arms & ~no_se & ~(v_p > _ZERO_RTOL * scale_p)
-        zero_vb = both_arms & ~no_se & ~zero_fs & ~(v_b > _ZERO_RTOL * scale_b / np.where(zero_fs, 1.0, pi) ** 2)
+        # v_u (before dividing by pi^2) against its raw-moment scale
+        zero_vb = both_arms & ~no_se & ~zero_fs & ~(factor * v_u > _ZERO_RTOL * scale_b)
         v_g = _positive_or_nan(v_g, scale_g)
         v_p = _positive_or_nan(v_p, scale_p)
         v_b = np.where(zero_vb, nan, v_b)
@@ -425,8 +426,8 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
         (neg_fs, "negative_first_stage", "uptake is lower in the treatment arm than in "
                                          "control: evidence against monotonicity or of an "
                                          "assignment mix-up; CACE estimated but suspect"),
-        (const_y, "constant_outcome", "outcome does not vary within arms: ITT standard error "
-                                      "is zero, reported as null"),
+        (const_y, "constant_outcome", "ITT variance is zero (outcome does not vary within "
+                                      "arms): ITT standard error reported as null"),
         (fixed_d, "deterministic_uptake", "uptake does not vary within arms: complier-share "
                                           "standard error is zero and the first-stage F is "
                                           "infinite, both reported as null"),
