@@ -15,7 +15,7 @@ result field is ever infinite and no numerical warning escapes.
 from __future__ import annotations
 
 import difflib
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import optimize, stats
@@ -30,7 +30,6 @@ METHODS: tuple[str, ...] = ("fixed", "dl", "reml", "pm")
 #: Accepted values of ``pi_method``.
 PI_METHODS: tuple[str, ...] = ("t", "hksj", "z")
 
-_RANDOM_METHODS = ("dl", "reml", "pm")
 _METHOD_LABELS = {
     "fixed": "inverse-variance fixed effect",
     "dl": "DerSimonian-Laird",
@@ -38,11 +37,11 @@ _METHOD_LABELS = {
     "pm": "Paule-Mandel",
 }
 
-# Iteration controls of the REML Fisher scoring.  The step is declared
+# Iteration controls of the REML Newton iteration.  The step is declared
 # converged when it is below _REML_RTOL times (tau2 + mean within variance),
 # i.e. relative to the scale of the total variance, so the criterion does not
 # depend on the units of the effect.
-_REML_MAXITER = 500
+_REML_MAXITER = 200
 _REML_RTOL = 1e-12
 
 
@@ -117,7 +116,11 @@ def _choose(value: str, accepted: tuple[str, ...], what: str) -> str:
     key = value.strip().lower()
     if key in accepted:
         return key
-    nearest = difflib.get_close_matches(key, accepted, n=1, cutoff=0.0)
+    # Suggestions also match the long names, e.g. "Paule-Mandel" -> "pm".
+    candidates = {a: a for a in accepted}
+    candidates.update({long.lower(): a for a, long in _METHOD_LABELS.items() if a in accepted})
+    nearest = difflib.get_close_matches(key, list(candidates), n=1, cutoff=0.0)
+    nearest = [candidates[n] for n in nearest]
     hint = f" Did you mean {nearest[0]!r}?" if nearest else ""
     raise ValueError(
         f"unknown {what} {value!r}.{hint} Accepted: {', '.join(repr(a) for a in accepted)}."
@@ -234,6 +237,8 @@ def _root_of_q(y: np.ndarray, v: np.ndarray, target: float) -> tuple[float, bool
     if not q0 > target:
         return 0.0, True
     upper = float(np.sum((y - y.mean()) ** 2) / target - v.min())
+    if not np.isfinite(upper):  # overflow with absurdly spread inputs
+        return float("nan"), False
     if not upper > 0.0:  # cannot happen when q0 > target; kept as a guard
         return 0.0, True
     xtol = 1e-15 * (upper + float(v.mean()))
@@ -251,8 +256,8 @@ def _tau2_dl(y: np.ndarray, v: np.ndarray, q: float) -> float:
     return max(0.0, float((q - (y.size - 1)) / c))
 
 
-def reml_score(y: np.ndarray, v: np.ndarray, tau2: float) -> tuple[float, float]:
-    """Score and Fisher information of the restricted log-likelihood in ``tau2``.
+def reml_score(y: np.ndarray, v: np.ndarray, tau2: float) -> tuple[float, float, float]:
+    """Score and information of the restricted log-likelihood in ``tau2``.
 
     Parameters
     ----------
@@ -263,9 +268,15 @@ def reml_score(y: np.ndarray, v: np.ndarray, tau2: float) -> tuple[float, float]
 
     Returns
     -------
-    score, information : float
-        ``0.5 * (sum w² r² - tr P)`` and ``0.5 * tr(P²)``, with
-        ``P = W - w wᵀ / sum w`` and ``r = y - mu(tau2)``.
+    score : float
+        ``0.5 * (sum w² r² - tr P)``, the derivative of the restricted
+        log-likelihood, with ``w = 1 / (v + tau2)``, ``r = y - mu(tau2)`` and
+        ``P = W - w wᵀ / sum w``.
+    fisher_information : float
+        ``0.5 * tr(P²)`` (always positive for ``k >= 2``).
+    observed_information : float
+        Minus the second derivative,
+        ``sum w³ r² - (sum w² r)² / sum w - fisher_information``.
 
     References
     ----------
@@ -277,27 +288,48 @@ def reml_score(y: np.ndarray, v: np.ndarray, tau2: float) -> tuple[float, float]
     """
     w = 1.0 / (v + tau2)
     mu, sw = _weighted_mean(y, w)
+    r = y - mu
     w2 = w * w
+    w3 = w2 * w
     s2 = float(w2.sum())
     tr_p = sw - s2 / sw
-    tr_pp = s2 - 2.0 * float((w2 * w).sum()) / sw + (s2 / sw) ** 2
-    score = 0.5 * (float(np.dot(w2, (y - mu) ** 2)) - tr_p)
-    return score, 0.5 * tr_pp
+    fisher = 0.5 * (s2 - 2.0 * float(w3.sum()) / sw + (s2 / sw) ** 2)
+    score = 0.5 * (float(np.dot(w2, r * r)) - tr_p)
+    observed = float(np.dot(w3, r * r)) - float(np.dot(w2, r)) ** 2 / sw - fisher
+    return score, fisher, observed
 
 
 def _tau2_reml(y: np.ndarray, v: np.ndarray, start: float) -> tuple[float, bool, int]:
-    """Fisher scoring for the REML tau2, projected onto ``tau2 >= 0``.
+    """REML tau2 by safeguarded Newton-Raphson on the restricted score.
+
+    The Newton step uses the observed information when it is positive and
+    the Fisher information otherwise (a Fisher-scoring step).  Points with a
+    positive / negative score are kept as a bracket ``[lo, hi]`` of the root;
+    a step that leaves the bracket is replaced by bisection, so the
+    iteration cannot cycle or leave ``tau2 >= 0``.  If the score at 0 is
+    ``<= 0`` the maximum over ``tau2 >= 0`` is on the boundary and 0 is
+    returned (this assumes the usual single-peaked restricted likelihood).
 
     Iterations (not sites) are looped over; each step is vectorised over
-    sites.  A negative proposal is set to 0; two consecutive zeros mean the
-    maximum is on the boundary (score <= 0 at 0).
+    sites.  Returns ``(tau2, converged, iterations)``.
     """
     scale = float(v.mean())
+    if reml_score(y, v, 0.0)[0] <= 0.0:
+        return 0.0, True, 1
+    lo, hi = 0.0, np.inf
     tau2 = max(0.0, float(start))
     for it in range(1, _REML_MAXITER + 1):
-        score, info = reml_score(y, v, tau2)
-        new = max(0.0, tau2 + score / info)
-        if abs(new - tau2) <= _REML_RTOL * (new + scale):
+        score, fisher, observed = reml_score(y, v, tau2)
+        if score == 0.0:
+            return tau2, True, it
+        if score > 0.0:
+            lo = max(lo, tau2)
+        else:
+            hi = min(hi, tau2)
+        new = tau2 + score / (observed if observed > 0.0 else fisher)
+        if not lo < new < hi:
+            new = 0.5 * (lo + hi)
+        if abs(new - tau2) <= _REML_RTOL * (new + scale) or hi - lo <= _REML_RTOL * (lo + scale):
             return new, True, it
         tau2 = new
     return tau2, False, _REML_MAXITER
@@ -332,7 +364,8 @@ def combine(
     variances : array_like
         Their sampling variances (squared standard errors).
     method : {"reml", "dl", "pm", "fixed"}
-        Estimator of ``tau2``: restricted maximum likelihood (Fisher scoring),
+        Estimator of ``tau2``: restricted maximum likelihood (safeguarded
+        Newton-Raphson / Fisher scoring on the restricted score),
         DerSimonian-Laird, Paule-Mandel (root of the generalised Q = k - 1),
         or the fixed-effect model (``tau2 = 0``).  Case-insensitive.
     level : float
@@ -372,6 +405,15 @@ def combine(
     ``<= 0``, are dropped (the note counts them).  ``tau2`` is clipped at 0
     for every random-effects method.
 
+    * REML uses Newton-Raphson on the restricted score, falling back to a
+      Fisher-scoring step where the observed information is not positive,
+      inside a bracket that keeps ``tau2 >= 0``; if the score at 0 is
+      ``<= 0`` the estimate is 0.  PM solves ``Q_gen(tau2) = k - 1`` by
+      Brent's method on a proven bracket.  ``converged`` reports either.
+    * HKSJ uses the weights of the chosen method (``1 / v`` for
+      ``"fixed"``); its variance is ``q_hk / sum w`` with
+      ``q_hk = sum w (y - mu)² / (k - 1)`` (no truncation by default, as
+      ``var_hksj_fe`` / ``var_hksj_re`` in statsmodels).
     * Cochran's ``q`` always uses fixed-effect weights ``1 / v``.
     * For ``"fixed"``: ``i2 = max(0, (q - df) / q)`` and ``h2 = max(1, q / df)``
       (Higgins & Thompson 2002); ``tau2 = 0`` by assumption and its interval
@@ -379,7 +421,7 @@ def combine(
     * For random-effects methods ``i2 = tau2 / (tau2 + s²)`` with the
       "typical" within-site variance ``s² = (k - 1) sum w / ((sum w)² -
       sum w²)``, ``w = 1 / v``, and ``h2 = (tau2 + s²) / s²``
-      (Higgins & Thompson 2002, eq. 9; Viechtbauer 2010).  With DL this
+      (Higgins & Thompson 2002; Viechtbauer 2010).  With DL this
       equals ``(q - df) / q``.
     * The ``tau2`` interval is the Q-profile interval: the values of
       ``tau2`` at which the generalised Q (weights ``1 / (v + tau2)``) equals
@@ -396,6 +438,9 @@ def combine(
     Controlled Clinical Trials, 7, 177-188.
     Paule, R. C. and Mandel, J. (1982). Consensus values and weighting
     factors. J. Res. Natl. Bur. Stand., 87, 377-385.
+    DerSimonian, R. and Kacker, R. (2007). Random-effects model for
+    meta-analysis of clinical trials: an update. Contemporary Clinical
+    Trials, 28, 105-114.
     Harville, D. A. (1977). Maximum likelihood approaches to variance
     component estimation. JASA, 72, 320-338.
     Viechtbauer, W. (2005). Bias and efficiency of meta-analytic variance
@@ -429,8 +474,50 @@ def combine(
     if k == 0:
         notes.append("no usable sites: nothing to pool")
         return _nan_result(method, level, pi_method, notes)
+    # Location-scale equivariance: work on (y - c) / s and v / s² with c the
+    # median effect and s² the median variance, then map back.  This keeps
+    # every intermediate quantity near 1 whatever the units of the effect.
     with np.errstate(all="ignore"):
-        return _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes)
+        shift = float(np.median(y))
+        unit = float(np.sqrt(np.median(v)))
+        try:
+            res = _combine_clean((y - shift) / unit, v / unit**2, method, level,
+                                 hksj_truncate, pi_method, notes)
+        except ArithmeticError:  # OverflowError from float ** with absurd inputs
+            notes.append("numerical overflow: variances span too many orders of magnitude")
+            return _nan_result(method, level, pi_method, notes, n_sites=k)
+        return _unscale(res, shift, unit)
+
+
+_LOCATION_FIELDS = ("estimate", "ci_low", "ci_high", "hksj_ci_low", "hksj_ci_high",
+                    "pi_low", "pi_high")
+_SCALE_FIELDS = ("se", "hksj_se")
+_VARIANCE_FIELDS = ("tau2", "tau2_ci_low", "tau2_ci_high")
+
+
+def _unscale(res: MetaResult, shift: float, unit: float) -> MetaResult:
+    """Map a result on the standardised scale back; replace any inf by NaN."""
+    changes: dict[str, float] = {}
+    for name in _LOCATION_FIELDS:
+        changes[name] = float(np.float64(shift) + np.float64(unit) * getattr(res, name))
+    for name in _SCALE_FIELDS:
+        changes[name] = float(np.float64(unit) * getattr(res, name))
+    for name in _VARIANCE_FIELDS:
+        changes[name] = float(np.float64(unit) ** 2 * getattr(res, name))
+    for name in ("q", "q_pvalue", "i2", "h2"):
+        changes[name] = float(getattr(res, name))
+    notes = [res.note] if res.note else []
+    infinite = [name for name, val in changes.items() if np.isinf(val)]
+    for name in infinite:
+        changes[name] = float("nan")
+    if infinite:
+        notes.append(f"numerical overflow: {', '.join(infinite)} set to NaN")
+    elif res.n_sites >= 2:
+        core = ("estimate", "se", "q", "q_pvalue", "i2", "h2", "tau2")
+        lost = [name for name in core if np.isnan(changes.get(name, getattr(res, name)))]
+        if lost:
+            notes.append(f"numerical problem (inputs too extreme): {', '.join(lost)} undefined")
+    return replace(res, note="; ".join(notes), **changes)
 
 
 def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes) -> MetaResult:
@@ -464,7 +551,7 @@ def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes) -> Meta
     else:  # reml
         tau2, converged, n_iter = _tau2_reml(y, v, _tau2_dl(y, v, q))
         if not converged:
-            notes.append(f"REML Fisher scoring did not converge in {n_iter} iterations; "
+            notes.append(f"REML iteration did not converge in {n_iter} iterations; "
                          "last iterate reported")
 
     # ---- pooled estimate --------------------------------------------------
@@ -496,7 +583,7 @@ def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes) -> Meta
         i2 = (q - df) / q if q > df else 0.0
         h2 = q / df if q > df else 1.0
     else:
-        s2 = df * sw_fe / (sw_fe**2 - float(np.dot(w_fe, w_fe)))
+        s2 = df * sw_fe / (sw_fe * sw_fe - float(np.dot(w_fe, w_fe)))
         i2 = tau2 / (tau2 + s2)
         h2 = (tau2 + s2) / s2
 

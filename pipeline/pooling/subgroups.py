@@ -105,7 +105,7 @@ def between_group_test(effects, variances, groups, method: str = "reml") -> Subg
     method = resolve_method(method)
     y_all = np.atleast_1d(np.asarray(effects, dtype=float))
     g_all = np.empty(len(groups), dtype=object)
-    g_all[:] = list(groups)
+    g_all[:] = [x.item() if isinstance(x, np.generic) else x for x in groups]
     if g_all.shape != y_all.shape:
         raise ValueError(f"groups has {g_all.size} entries but effects has {y_all.size}")
     y, v, keep, notes = clean_inputs(effects, variances)
