@@ -83,8 +83,60 @@ def build_parser() -> argparse.ArgumentParser:
                    help="directory for the generated files (default: sample_warehouse)")
     p.add_argument("--seed", type=int, default=None, help="random seed (default: the documented demo seed)")
     p.add_argument("--no-run", action="store_true", help="only generate and ingest")
-    p.add_argument("--orchestrated", action="store_true", help="run the monitoring as a Prefect flow")
+    p.add_argument("--in-process", action="store_true",
+                   help="run the monitoring in process instead of as a Prefect flow")
+
+    p = sub.add_parser("run", help="compute a monitoring run",
+                       description="Estimate per site and pooled, follow uptake trends and raise alerts as of a "
+                                   "cutoff date; every result table gets the new run_id.")
+    _warehouse_arg(p)
+    p.add_argument("--as-of", type=_date, help="cutoff date (default: today)")
+    p.add_argument("--config", type=Path, help="study configuration (TOML); default: the stored one")
+    _orchestration_args(p)
+
+    p = sub.add_parser("runs", help="list the runs", description="List monitoring runs, newest first.")
+    _warehouse_arg(p)
+    p.add_argument("--limit", type=int, default=20)
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+
+    p = sub.add_parser("alerts", help="show the alerts of a run",
+                       description="Alerts are prompts for human review, not decisions.")
+    _warehouse_arg(p)
+    p.add_argument("--run", help="run id (default: the latest finished run)")
+    p.add_argument("--status", choices=["new", "ongoing", "resolved"], help="only alerts with this status")
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+
+    p = sub.add_parser("export", help="write the result tables of a run to files",
+                       description="One file per result table (Parquet or CSV).")
+    _warehouse_arg(p)
+    p.add_argument("--out", type=Path, required=True, help="output directory")
+    p.add_argument("--format", choices=["parquet", "csv"], default="parquet")
+    p.add_argument("--run", help="run id (default: the latest finished run)")
+
+    p = sub.add_parser("report", help="write the HTML report of a run",
+                       description="One self-contained HTML file for programme managers.")
+    _warehouse_arg(p)
+    p.add_argument("--out", type=Path, required=True, help="output HTML file")
+    p.add_argument("--run", help="run id (default: the latest finished run)")
+
+    p = sub.add_parser("serve", help="serve the ingest and monitoring flows on the study's schedule",
+                       description="Register both flows as Prefect deployments with the cron schedule of the "
+                                   "study configuration ([schedule]) and serve them until interrupted.")
+    _warehouse_arg(p)
+    p.add_argument("--config", type=Path, required=True, help="study configuration (TOML)")
+    p.add_argument("--incoming", type=Path, default=None,
+                   help="directory the scheduled ingest picks files up from (default: none; monitoring only)")
+    p.add_argument("--once", action="store_true", help="register the deployments and exit (no serving loop)")
     return parser
+
+
+def _orchestration_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--orchestrated", action="store_true",
+                   help="run as a Prefect flow (local ephemeral API, or the server in PREFECT_API_URL)")
+    p.add_argument("--runner", choices=["local", "dask"], default=None,
+                   help="task runner for --orchestrated (default: the config's [execution] runner)")
+    p.add_argument("--dask-address", default=None, metavar="tcp://HOST:PORT",
+                   help="existing Dask scheduler for --runner dask")
 
 
 def _setup_logging(level: str) -> None:
@@ -173,11 +225,160 @@ def cmd_demo(args) -> int:
     reports = _ingest_paths(warehouse, list(manifest.files), None, True)
     _print_reports(reports, True)
     print(f"warehouse: {warehouse}")
+    if not args.no_run:
+        summary = _run(warehouse, manifest.as_of, None, orchestrated=not args.in_process, runner=None,
+                       dask_address=None, quiet=args.quiet)
+        _print_summary(summary)
+        report = out / "report.html"
+        from pipeline.report import render_report
+        from pipeline.warehouse import connect
+        con = connect(warehouse, read_only=False)
+        try:
+            render_report(con, report, summary.run_id)
+        finally:
+            con.close()
+        print(f"report: {report}")
+        print(f"alerts: takeup alerts --warehouse {warehouse}")
+        print(f"export: takeup export --warehouse {warehouse} --out {out / 'export'}")
     print(f"scenario and planted problems: {out / 'README.md'}")
     return EXIT_OK
 
 
-COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo}
+def _run(warehouse: Path, as_of, config_path, orchestrated: bool, runner, dask_address, quiet: bool):
+    from schemas.config import load_config
+    config = load_config(config_path) if config_path else None
+    if orchestrated:
+        from flows.monitor import run_orchestrated
+        return run_orchestrated(warehouse, as_of=as_of, config=config, runner=runner, dask_address=dask_address)
+    if runner is not None or dask_address is not None:
+        raise UsageError("--runner and --dask-address apply to --orchestrated runs only")
+    from pipeline.run import run_monitoring
+    return run_monitoring(warehouse, as_of=as_of, config=config)
+
+
+def _print_summary(s) -> None:
+    mode = "orchestrated (Prefect flow run " + str(s.flow_run_id) + ")" if s.mode == "orchestrated" else \
+        "in process (no orchestration API)"
+    print(f"run {s.run_id}: {s.status}; mode {mode}; as of {s.as_of}; {s.n_sites} sites")
+    rows = ", ".join(f"{k} {v}" for k, v in s.rows.items())
+    print(f"  rows written: {rows}")
+    if s.alerts_by_status:
+        print("  alerts: " + ", ".join(f"{v} {k}" for k, v in sorted(s.alerts_by_status.items())))
+    total = sum(s.timings.values()) if s.timings else 0.0
+    print(f"  compute time {total:.2f} s" + (f"; {s.message}" if s.message else ""))
+
+
+def cmd_run(args) -> int:
+    summary = _run(_warehouse(args), args.as_of, args.config, args.orchestrated, args.runner,
+                   args.dask_address, args.quiet)
+    _print_summary(summary)
+    print(f"results: tables site_estimates, pooled_estimates, uptake_trends, alerts ... in {_warehouse(args)} "
+          f"(views latest_*)")
+    return EXIT_OK if summary.status == "ok" else EXIT_DATA
+
+
+def _print_table(frame, quiet: bool = False) -> None:
+    import sys as _sys
+    if frame.empty:
+        print("(none)")
+        return
+    if _sys.stdout.isatty():
+        from rich.console import Console
+        from rich.table import Table
+        t = Table(show_lines=False)
+        for c in frame.columns:
+            t.add_column(str(c))
+        for row in frame.itertuples(index=False):
+            t.add_row(*["" if v is None or (isinstance(v, float) and v != v) else str(v) for v in row])
+        Console().print(t)
+    else:
+        print(frame.to_string(index=False))
+
+
+def _latest_run(con, run: str | None) -> str:
+    if run is not None:
+        if con.execute("SELECT 1 FROM runs WHERE run_id = $r", {"r": run}).fetchone() is None:
+            known = [r[0] for r in con.execute("SELECT run_id FROM runs ORDER BY started_at DESC LIMIT 5").fetchall()]
+            raise UsageError(f"no run {run!r} in this warehouse" + (f"; latest: {', '.join(known)}" if known else ""))
+        return run
+    row = con.execute("SELECT run_id FROM runs WHERE status IN ('ok', 'partial') "
+                      "ORDER BY started_at DESC, run_id DESC LIMIT 1").fetchone()
+    if row is None:
+        raise UsageError("no finished run yet; compute one with 'takeup run'")
+    return row[0]
+
+
+def cmd_runs(args) -> int:
+    from pipeline.warehouse import connect
+    con = connect(_warehouse(args), read_only=True)
+    try:
+        df = con.execute("SELECT run_id, status, mode, as_of, started_at, finished_at, n_sites, n_batches, "
+                         "flow_run_id, message FROM runs ORDER BY started_at DESC LIMIT $n", {"n": args.limit}).df()
+    finally:
+        con.close()
+    if args.json:
+        print(df.to_json(orient="records", date_format="iso"))
+    else:
+        _print_table(df)
+    return EXIT_OK
+
+
+def cmd_alerts(args) -> int:
+    from pipeline.warehouse import connect
+    con = connect(_warehouse(args), read_only=True)
+    try:
+        run = _latest_run(con, args.run)
+        df = con.execute("""
+            SELECT status, severity, rule, site_id, outcome, value, threshold, p_value, first_seen_run_id, message
+            FROM alerts WHERE run_id = $r AND ($s IS NULL OR status = $s)
+            ORDER BY CASE status WHEN 'new' THEN 0 WHEN 'ongoing' THEN 1 ELSE 2 END,
+                     CASE severity WHEN 'critical' THEN 0 WHEN 'warning' THEN 1 ELSE 2 END, rule, site_id
+        """, {"r": run, "s": args.status}).df()
+    finally:
+        con.close()
+    if args.json:
+        print(df.to_json(orient="records", double_precision=6))
+        return EXIT_OK
+    print(f"alerts of run {run} (prompts for human review, not decisions):")
+    _print_table(df.drop(columns=["first_seen_run_id"]))
+    return EXIT_OK
+
+
+def cmd_export(args) -> int:
+    from pipeline.export import export_tables
+    from pipeline.warehouse import connect
+    con = connect(_warehouse(args), read_only=True)
+    try:
+        paths = export_tables(con, args.out, fmt=args.format, run_id=args.run)
+    finally:
+        con.close()
+    for p in paths:
+        print(p)
+    return EXIT_OK
+
+
+def cmd_report(args) -> int:
+    from pipeline.report import render_report
+    from pipeline.warehouse import connect
+    con = connect(_warehouse(args), read_only=True)
+    try:
+        path = render_report(con, args.out, args.run)
+    finally:
+        con.close()
+    print(f"report: {path}")
+    return EXIT_OK
+
+
+def cmd_serve(args) -> int:
+    from schemas.config import load_config
+    config = load_config(args.config)
+    from flows.serve import serve_deployments
+    serve_deployments(_warehouse(args), config, args.config, incoming=args.incoming, once=args.once)
+    return EXIT_OK
+
+
+COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd_run, "runs": cmd_runs,
+            "alerts": cmd_alerts, "export": cmd_export, "report": cmd_report, "serve": cmd_serve}
 
 
 def main(argv: list[str] | None = None) -> int:

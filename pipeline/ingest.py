@@ -299,6 +299,8 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
 
     try:
         with transaction(con):
+            if path.stat().st_size == 0:
+                raise IngestError(f"{name}: the file is empty (no header, no rows)")
             try:
                 fmt = _file_format(path)
                 rows_read, rejected = _stage(con, path, fmt)

@@ -10,10 +10,10 @@ from pipeline.pseudonym import load_key
 from pipeline.warehouse import check_key, connect, stored_config
 from schemas.config import StudyConfig
 
-__all__ = ["ingest_paths"]
+__all__ = ["ingest_paths", "expand_paths"]
 
 
-def _expand(paths: Iterable[Path]) -> list[Path]:
+def expand_paths(paths: Iterable[Path]) -> list[Path]:
     out: list[Path] = []
     for p in paths:
         p = Path(p)
@@ -32,7 +32,7 @@ def ingest_paths(warehouse: Path | str, paths: Sequence[Path | str], kind: str |
     as rejected and the others still load.
     """
     warehouse = Path(warehouse)
-    files = _expand(paths)
+    files = expand_paths(paths)
     con = connect(warehouse)
     try:
         key = load_key(warehouse)
