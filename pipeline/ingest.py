@@ -121,8 +121,10 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path, fmt: str) -> tuple[int, l
     rejected = list(rejected or [])
     if rejected:
         # accepted records fill the physical lines not taken by rejected ones, in order
-        con.execute("CREATE OR REPLACE TEMP TABLE _stage_thr AS SELECT line - 1 - (row_number() OVER (ORDER BY line) - 1) AS t, "
-                    "row_number() OVER (ORDER BY line) AS c FROM (SELECT DISTINCT line FROM _stage_rej)")
+        # t = accepted records before a rejected line; c = rejected lines up to it (ties: keep the largest c)
+        con.execute("CREATE OR REPLACE TEMP TABLE _stage_thr AS SELECT t, max(c) AS c FROM ("
+                    "SELECT line - 1 - (row_number() OVER (ORDER BY line) - 1) AS t, "
+                    "row_number() OVER (ORDER BY line) AS c FROM (SELECT DISTINCT line FROM _stage_rej)) GROUP BY t")
         con.execute("CREATE OR REPLACE TEMP TABLE _stage AS SELECT s._row + coalesce(th.c, 0) AS _row, s.* EXCLUDE (_row) "
                     "FROM _stage s ASOF LEFT JOIN _stage_thr th ON s._row - 1 >= th.t")
     return n + len(rejected), rejected
@@ -137,6 +139,8 @@ def _stage_columns(con: duckdb.DuckDBPyConnection, file: str) -> dict[str, str]:
         if name == "_row":
             continue
         norm = name.strip().lower()
+        if not norm:
+            raise IngestError(f"{file}: a column of the header has an empty name")
         if norm in out:
             raise IngestError(f"{file}: column '{name}' appears twice in the header")
         out[norm] = dtype
@@ -347,6 +351,10 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
     except IngestError as exc:
         _cleanup(con)
         return reject(str(exc))
+    except duckdb.Error as exc:
+        # a file DuckDB cannot process (odd encodings, binary content): reject it, keep the warehouse as it was
+        _cleanup(con)
+        return reject(f"{name}: the file could not be processed: {str(exc).splitlines()[0]}")
     except BaseException:
         _cleanup(con)
         raise
