@@ -253,7 +253,7 @@ def _insert_records(con, kind: str, plan: ParsePlan, batch_id: str) -> None:
         else:
             exprs.append(_q(c))
     con.execute(f"INSERT INTO {_q(table)} ({', '.join(_q(c) for c in stored)}) "
-                f"SELECT {', '.join(exprs)} FROM _valid WHERE NOT _dup AND NOT _conflict ORDER BY _row",
+                f"SELECT {', '.join(exprs)} FROM _valid WHERE NOT _dup AND NOT _conflict",
                 {"b": batch_id})
     for cov in plan.covariates:
         con.execute(f"INSERT INTO assignment_covariates SELECT $b, site_id, participant_key, $cov, {_q('_cov_' + cov)} "

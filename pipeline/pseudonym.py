@@ -55,16 +55,22 @@ class PseudonymKey:
         """A value that identifies the key without revealing it (stored in the warehouse)."""
         return hmac.new(self.key, b"takeup key fingerprint", hashlib.sha256).hexdigest()[:16]
 
-    def pseudonym(self, site_id: str, participant_id: str) -> str:
+    def pseudonym(self, site_id: str, participant_id: str) -> int:
         """Python reference implementation (tests; the pipeline uses :meth:`sql`)."""
         msg = (site_id + SEPARATOR + participant_id).encode("utf-8")
-        return hmac.new(self.key, msg, hashlib.sha256).hexdigest()
+        return int(hmac.new(self.key, msg, hashlib.sha256).hexdigest()[:32], 16)
 
     @staticmethod
     def sql(site_expr: str, id_expr: str) -> str:
-        """SQL expression for the pseudonym; binds ``$ipad`` and ``$opad`` (BLOB parameters)."""
+        """SQL expression for the pseudonym; binds ``$ipad`` and ``$opad`` (BLOB parameters).
+
+        The stored pseudonym is the HMAC truncated to its first 128 bits (RFC 2104,
+        section 5, allows truncation to half the hash length), held as UHUGEINT:
+        fixed-width keys make the joins and group-bys of every run several times
+        faster than 64-character strings.
+        """
         msg = f"encode({site_expr} || chr(31) || {id_expr})"
-        return f"sha256($opad || unhex(sha256($ipad || {msg})))"
+        return f"CAST('0x' || left(sha256($opad || unhex(sha256($ipad || {msg}))), 32) AS UHUGEINT)"
 
 
 def key_file_for(warehouse: Path) -> Path:

@@ -76,10 +76,11 @@ def _raw_text(col: str, dtype: str) -> str:
 
 def _parse_expr(spec: ColumnSpec, raw: str, dtype: str) -> str:
     t = spec.python_type
+    typed = dtype != "VARCHAR"          # Parquet columns that already carry a type parse directly
     if spec.sql_type == "DATE":
-        return f"TRY_CAST({raw} AS DATE)"
+        return f"TRY_CAST({_q(spec.name) if typed else raw} AS DATE)"
     if spec.sql_type == "DOUBLE":
-        return f"TRY_CAST({raw} AS DOUBLE)"
+        return f"TRY_CAST({_q(spec.name) if typed else raw} AS DOUBLE)"
     if spec.sql_type == "BOOLEAN":
         if dtype == "BOOLEAN":
             return _q(spec.name)

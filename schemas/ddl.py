@@ -77,7 +77,7 @@ def columns_of(model: type[BaseModel]) -> list[ColumnSpec]:
         extra = info.json_schema_extra if isinstance(info.json_schema_extra, dict) else {}
         max_length = next((m.max_length for m in info.metadata if hasattr(m, "max_length")), None)
         out.append(ColumnSpec(
-            name=name, python_type=base, sql_type=sql_type_of(base), nullable=nullable,
+            name=name, python_type=base, sql_type=extra.get("sql_type") or sql_type_of(base), nullable=nullable,
             allowed=allowed, description=info.description or "", extra=dict(extra),
             required=info.is_required(), max_length=max_length,
         ))

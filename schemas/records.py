@@ -116,7 +116,9 @@ INPUT_MODELS: dict[str, type[_Strict]] = {
 class _Provenance(_Strict):
     batch_id: str = Field(description="Batch (file) the row arrived in; see `batches`.")
     source_row: int = Field(description="Row of the source file (CSV: physical line, header = 1; Parquet: 1-based row).")
-    participant_key: str = Field(description="HMAC-SHA256 pseudonym of (site_id, participant_id), hex.")
+    participant_key: int = Field(description="Pseudonym of (site_id, participant_id): the first 128 bits of their "
+                                             "HMAC-SHA256 as an unsigned integer.",
+                                 json_schema_extra={"sql_type": "UHUGEINT"})
 
 
 class AssignmentRow(_AssignmentFields, _Provenance):
@@ -128,7 +130,8 @@ class AssignmentCovariateRow(_Strict):
 
     batch_id: str = Field(description="Batch the covariate arrived in.")
     site_id: str = Field(description="Site identifier.")
-    participant_key: str = Field(description="Participant pseudonym.")
+    participant_key: int = Field(description="Participant pseudonym (see `assignments`).",
+                                 json_schema_extra={"sql_type": "UHUGEINT"})
     covariate: str = Field(description="Covariate name as declared in the study config.")
     value: Optional[float] = Field(default=None, description="Covariate value (null when not reported).")
 
