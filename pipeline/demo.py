@@ -241,3 +241,44 @@ def generate_demo(root: Path | str, seed: int = DEMO_SEED) -> DemoManifest:
     (root / "incoming" / "manifest.json").write_text(json.dumps(manifest, indent=2))
     return DemoManifest(root=root, config_path=config_path, files=tuple(files), as_of=demo_as_of(),
                         n_participants=int(len(df)))
+
+
+def generate_late_files(root: Path | str, seed: int = DEMO_SEED) -> tuple[Path, ...]:
+    """Files that repair two planted problems after the fact (for the alert lifecycle).
+
+    * C05 sends the control-arm outcomes it had not reported (late assessment returns);
+    * C27 sends its backlog: the assignments, uptake and outcomes of the weeks it missed.
+
+    Written under ``root/incoming/late/``; ingesting them and re-running resolves the
+    ``differential_missing_outcomes`` alert of C05 and the ``stale_site`` alert of C27.
+    """
+    root = Path(root)
+    rng = np.random.default_rng(seed)
+    df = _simulate(rng)
+    late = root / "incoming" / "late"
+    late.mkdir(parents=True, exist_ok=True)
+    files = []
+    c05 = df[(df.site_id == "C05") & df.outcome_missing & (df.z == 0)]
+    out = pd.DataFrame({"site_id": c05.site_id, "participant_id": c05.participant_id, "outcome": "numeracy_score",
+                        "measured_on": [d.isoformat() for d in c05.measured_on], "value": c05.score.round(1)})
+    files.append(_write(out, late / "C05_outcome_late.csv", False))
+    c27 = df[df.site_id == "C27"]
+    back = c27[c27.week >= 8]       # uploads 9.. never arrived: lottery weeks 9-12 and the uptake of week 8 on
+    a = back[back.week >= 9]
+    files.append(_write(pd.DataFrame({"site_id": a.site_id, "participant_id": a.participant_id,
+                                      "arm": np.where(a.z == 1, "treatment", "control"),
+                                      "assigned_on": [d.isoformat() for d in a.assigned_on],
+                                      "age": a.age, "baseline_score": a.baseline_score}),
+                        late / "C27_assignment_backlog.csv", False))
+    yes, no = _took_up_tokens("C27")
+    files.append(_write(pd.DataFrame({"site_id": back.site_id, "participant_id": back.participant_id,
+                                      "observed_on": [(d + timedelta(days=7)).isoformat() for d in back.assigned_on],
+                                      "took_up": np.where(back.d == 1, yes, no)}),
+                        late / "C27_uptake_backlog.csv", False))
+    o = c27[~c27.outcome_missing]
+    files.append(_write(pd.DataFrame({"site_id": o.site_id, "participant_id": o.participant_id,
+                                      "outcome": "numeracy_score",
+                                      "measured_on": [d.isoformat() for d in o.measured_on],
+                                      "value": o.score.round(1)}),
+                        late / "C27_outcome_backlog.csv", False))
+    return tuple(files)

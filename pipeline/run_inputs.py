@@ -100,28 +100,54 @@ def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[pd.D
                CAST(sum(d) AS BIGINT) AS n_taken_up
         FROM p GROUP BY ALL ORDER BY ALL
     """, params).df()
-    # calendar basis: status at the end of each period among those assigned by then
-    calendar = con.execute(f"""
+    # calendar basis: status at the end of each period among those assigned by then.  Computed from
+    # per-period counts of assignments, first uptake reports and first "took up" reports, then
+    # cumulated over the (small) period grid: no participant x period join.
+    events = con.execute(f"""
         WITH p AS (SELECT DISTINCT site_id, participant_key, z, assigned_on FROM _sample),
-        periods AS (
-            SELECT CAST(unnest(generate_series($origin, $as_of, to_days($period_days))) AS DATE) AS period_start
-        ), first_up AS (
+        first_up AS (
             SELECT site_id, participant_key, min(observed_on) FILTER (WHERE took_up) AS first_yes,
                    min(observed_on) AS first_obs
             FROM uptake_events
             WHERE observed_on <= $as_of
               AND batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $cutoff)
             GROUP BY ALL
+        ), j AS (
+            SELECT p.site_id, p.z, p.assigned_on,
+                   CASE WHEN f.first_obs IS NOT NULL THEN greatest(f.first_obs, p.assigned_on) END AS first_obs,
+                   CASE WHEN f.first_yes IS NOT NULL THEN greatest(f.first_yes, p.assigned_on) END AS first_yes
+            FROM p LEFT JOIN first_up f USING (site_id, participant_key)
         )
-        SELECT p.site_id, p.z, periods.period_start,
-               count(*) AS n_assigned,
-               count(*) FILTER (WHERE f.first_obs < periods.period_start + to_days($period_days)) AS n_observed,
-               count(*) FILTER (WHERE f.first_yes < periods.period_start + to_days($period_days)) AS n_taken_up
-        FROM periods JOIN p ON p.assigned_on < periods.period_start + to_days($period_days)
-        LEFT JOIN first_up f USING (site_id, participant_key)
-        GROUP BY ALL ORDER BY ALL
+        SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
+               count(*) AS n_assigned, 0 AS n_observed, 0 AS n_taken_up FROM j GROUP BY ALL
+        UNION ALL
+        SELECT site_id, z, CAST({_period_start_sql('first_obs')} AS DATE), 0, count(*), 0
+        FROM j WHERE first_obs IS NOT NULL GROUP BY ALL
+        UNION ALL
+        SELECT site_id, z, CAST({_period_start_sql('first_yes')} AS DATE), 0, 0, count(*)
+        FROM j WHERE first_yes IS NOT NULL GROUP BY ALL
     """, {**params, "as_of": ctx.as_of, "cutoff": ctx.data_cutoff}).df()
+    calendar = _cumulate_calendar(events, origin, ctx.as_of, period)
     return cohort, calendar
+
+
+def _cumulate_calendar(events: pd.DataFrame, origin: date, as_of: date, period: int) -> pd.DataFrame:
+    """Cumulative counts per site x arm on the regular period grid from ``origin`` to ``as_of``."""
+    cols = ["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"]
+    if events.empty:
+        return pd.DataFrame(columns=cols)
+    grid = list(pd.date_range(pd.Timestamp(origin), pd.Timestamp(as_of), freq=f"{period}D").date)
+    ev = events.assign(period_start=pd.to_datetime(events.period_start).dt.date)
+    ev = ev[ev.period_start.isin(set(grid))]
+    parts = []
+    for col in cols[3:]:
+        wide = ev.pivot_table(index=["site_id", "z"], columns="period_start", values=col, aggfunc="sum",
+                              fill_value=0).reindex(columns=grid, fill_value=0).cumsum(axis=1)
+        parts.append(wide.stack().rename(col))
+    out = pd.concat(parts, axis=1).fillna(0).astype("int64").reset_index()
+    out.columns = cols
+    out = out[out.n_assigned > 0].sort_values(["site_id", "z", "period_start"]).reset_index(drop=True)
+    return out
 
 
 def _site_activity(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> pd.DataFrame:

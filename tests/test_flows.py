@@ -1,0 +1,180 @@
+"""Prefect flows: orchestrated run equals the in-process run; Dask runner; ingest flow; serve registration.
+
+One ``prefect_test_harness`` for the whole session (its API start takes ~10-20 s).
+"""
+
+from __future__ import annotations
+
+import os
+from datetime import date
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+
+pytest.importorskip("prefect")
+
+from tests.conftest import TEST_KEY  # noqa: E402
+
+RESULT_TABLES = ("site_estimates", "complier_profile", "pooled_estimates", "subgroup_tests", "site_influence",
+                 "uptake_trends", "alerts")
+AS_OF = date(2026, 5, 31)
+
+
+@pytest.fixture(scope="session")
+def prefect_api():
+    from prefect.testing.utilities import prefect_test_harness
+    with prefect_test_harness(server_startup_timeout=180):
+        yield
+
+
+def _site_files(root, seed=7, n_sites=6, n=160):
+    """Small invented multi-site study with covariates (simulation, known truth CACE = 3)."""
+    rng = np.random.default_rng(seed)
+    rows_a, rows_u, rows_o = [], [], []
+    for s in range(n_sites):
+        site = f"S{s + 1}"
+        z = rng.permutation(np.arange(n) % 2)
+        typ = rng.random(n)
+        d = np.where(typ < 0.1, 1, np.where(typ < 0.75, z, 0))
+        x = rng.normal(40, 10, n).round(1)
+        y = 10 + 0.1 * x + 3.0 * d + rng.normal(0, 2, n)
+        for i in range(n):
+            pid = f"{site}-{i}"
+            assigned = date(2026, 3, 2 + (i % 4) * 7)
+            rows_a.append((site, pid, "treatment" if z[i] else "control", assigned.isoformat(), x[i]))
+            rows_u.append((site, pid, date(2026, 4, 1).isoformat(), int(d[i])))
+            rows_o.append((site, pid, "score", date(2026, 5, 20).isoformat(), round(float(y[i]), 3)))
+    a = root / "assign.csv"
+    pd.DataFrame(rows_a, columns=["site_id", "participant_id", "arm", "assigned_on", "age"]).to_csv(a, index=False)
+    u = root / "uptake.csv"
+    pd.DataFrame(rows_u, columns=["site_id", "participant_id", "observed_on", "took_up"]).to_csv(u, index=False)
+    o = root / "outcome.csv"
+    pd.DataFrame(rows_o, columns=["site_id", "participant_id", "outcome", "measured_on", "value"]).to_csv(o, index=False)
+    return [a, u, o]
+
+
+@pytest.fixture
+def small_warehouse(tmp_path, monkeypatch):
+    from pipeline.ingest_many import ingest_paths
+    from pipeline.warehouse import init_warehouse
+    from schemas.config import parse_config
+    monkeypatch.setenv("TAKEUP_ID_KEY", TEST_KEY)
+    cfg = parse_config({
+        "study_id": "flowtest", "covariates": ["age"], "outcomes": [{"name": "score", "primary": True}],
+        "follow_up": {"min_days": 0, "max_days": 200},
+        "estimation": {"adjust_covariates": True},
+        "sites": [{"site_id": f"S{i}", "group": "A" if i <= 3 else "B"} for i in range(1, 7)],
+    })
+    path = tmp_path / "w.duckdb"
+    init_warehouse(path, cfg)
+    files = _site_files(tmp_path)
+    reports = ingest_paths(path, files)
+    assert all(r.status == "loaded" and r.rows_quarantined == 0 for r in reports)
+    return path
+
+
+def _tables(path, run_id):
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        out = {}
+        for t in RESULT_TABLES:
+            df = con.execute(f"SELECT * EXCLUDE (run_id) FROM {t} WHERE run_id = $r", {"r": run_id}).df()
+            drop = [c for c in ("first_seen_run_id", "last_seen_run_id") if c in df.columns]
+            df = df.drop(columns=drop)
+            out[t] = df.sort_values(list(df.columns[:4])).reset_index(drop=True) if len(df) else df
+        return out
+    finally:
+        con.close()
+
+
+def _assert_same(a, b):
+    for t in RESULT_TABLES:
+        pd.testing.assert_frame_equal(a[t], b[t], check_exact=False, rtol=1e-12, atol=1e-12, obj=t)
+
+
+def test_orchestrated_run_equals_in_process(prefect_api, small_warehouse):
+    from flows.monitor import run_orchestrated
+    from pipeline.run import run_monitoring
+    plain = run_monitoring(small_warehouse, as_of=AS_OF)
+    orch = run_orchestrated(small_warehouse, as_of=AS_OF)
+    assert plain.mode == "in_process" and orch.mode == "orchestrated"
+    assert orch.flow_run_id and plain.flow_run_id is None
+    assert orch.rows["site_estimates"] == 12          # 6 sites x (unadjusted + covariate_adjusted)
+    _assert_same(_tables(small_warehouse, plain.run_id), _tables(small_warehouse, orch.run_id))
+    con = duckdb.connect(str(small_warehouse), read_only=True)
+    row = con.execute("SELECT status, flow_run_id, timings_json FROM runs WHERE run_id = $r",
+                      {"r": orch.run_id}).fetchone()
+    con.close()
+    assert row[0] == "ok" and row[1] == orch.flow_run_id and "site_estimates" in row[2]
+
+
+def test_failing_site_task_marks_site_and_run_partial(prefect_api, small_warehouse, monkeypatch):
+    from flows.monitor import run_orchestrated
+    from pipeline import run as core
+    real = core.compute_adjusted_row
+
+    def flaky(frame, base_row, ctx):
+        if base_row["site_id"] == "S2":
+            raise RuntimeError("injected site failure")
+        return real(frame, base_row, ctx)
+
+    monkeypatch.setattr(core, "compute_adjusted_row", flaky)
+    s = run_orchestrated(small_warehouse, as_of=AS_OF)
+    assert s.status == "partial" and "injected site failure" in s.message
+    con = duckdb.connect(str(small_warehouse), read_only=True)
+    rows = con.execute("SELECT site_id, status, note FROM site_estimates WHERE run_id = $r AND status = 'error'",
+                       {"r": s.run_id}).fetchall()
+    run_status = con.execute("SELECT status FROM runs WHERE run_id = $r", {"r": s.run_id}).fetchone()[0]
+    con.close()
+    assert [r[0] for r in rows] == ["S2"] and "injected site failure" in rows[0][2]
+    assert run_status == "partial"
+
+
+def test_dask_local_cluster_equals_local_runner(prefect_api, small_warehouse):
+    distributed = pytest.importorskip("distributed")
+    from flows.monitor import run_orchestrated
+    local = run_orchestrated(small_warehouse, as_of=AS_OF, runner="local")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster:
+        on_dask = run_orchestrated(small_warehouse, as_of=AS_OF, runner="dask", dask_address=cluster.scheduler_address)
+    assert on_dask.status == "ok"
+    _assert_same(_tables(small_warehouse, local.run_id), _tables(small_warehouse, on_dask.run_id))
+
+
+def test_ingest_flow_validates_in_parallel_and_loads(prefect_api, tmp_path, monkeypatch):
+    from flows.ingest import ingest_flow
+    from pipeline.warehouse import init_warehouse
+    monkeypatch.setenv("TAKEUP_ID_KEY", TEST_KEY)
+    path = tmp_path / "w.duckdb"
+    init_warehouse(path)
+    files = _site_files(tmp_path, n_sites=2, n=20)
+    bad = tmp_path / "bad.csv"
+    bad.write_text("site_id,participant_id,arm,assigned_on\nS1,x1,oops,2026-03-02\n")
+    out = ingest_flow([str(f) for f in files + [bad]], str(path))
+    assert [v["status"] for v in out["validation"]] == ["would_load"] * 4
+    assert out["validation"][-1]["reasons"] == {"unknown_arm": 1}
+    assert [b["rows_loaded"] for b in out["batches"]] == [40, 40, 40, 0]
+    again = ingest_flow([str(f) for f in files], str(path))
+    assert all(b["status"] == "duplicate_batch" for b in again["batches"])
+
+
+def test_serve_once_registers_scheduled_deployment(prefect_api, small_warehouse, tmp_path):
+    from prefect.client.orchestration import get_client
+    from flows.serve import serve_deployments
+    from schemas.config import parse_config
+    cfg = parse_config({"study_id": "flowtest", "schedule": {"cron": "15 7 * * 2", "timezone": "UTC"}})
+    ids = serve_deployments(small_warehouse, cfg, tmp_path / "study.toml", incoming=tmp_path, once=True)
+    assert len(ids) == 2
+
+    import asyncio
+
+    async def read():
+        async with get_client() as client:
+            return [await client.read_deployment(i) for i in ids]
+
+    deps = asyncio.run(read())
+    assert {d.name for d in deps} == {"flowtest-monitor", "flowtest-ingest"}
+    for d in deps:
+        assert d.schedules and d.schedules[0].schedule.cron == "15 7 * * 2"
