@@ -1,0 +1,15 @@
+"""The README's table contract is generated from the models and must stay in step with them."""
+
+from pathlib import Path
+
+from schemas.contract import contract_markdown
+
+
+def test_readme_contract_matches_models():
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    assert contract_markdown().strip() in readme, "run `python -m schemas.contract` and update the README"
+
+
+def test_readme_has_no_placeholders():
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    assert "_SECTION" not in readme
