@@ -382,7 +382,10 @@ COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd
 
 
 def main(argv: list[str] | None = None) -> int:
+    from flows.runners import RunnerError
+    from pipeline.export import ExportError
     from pipeline.ingest import IngestError
+    from pipeline.report.data import ReportError
     from pipeline.warehouse import WarehouseError
     from schemas.config import ConfigError
     parser = build_parser()
@@ -393,7 +396,7 @@ def main(argv: list[str] | None = None) -> int:
     except (ConfigError, UsageError) as exc:
         print(f"takeup {args.command}: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    except (WarehouseError, FileNotFoundError) as exc:
+    except (WarehouseError, FileNotFoundError, ExportError, ReportError, RunnerError) as exc:
         print(f"takeup {args.command}: {exc}", file=sys.stderr)
         return EXIT_USAGE
     except IngestError as exc:
