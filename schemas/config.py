@@ -98,6 +98,9 @@ class AlertThresholds(_Cfg):
     negative_first_stage_min_f: float = Field(default=3.8416, ge=0)
     first_stage_decline_periods: int = Field(default=4, ge=1, description="Recent assignment periods compared with earlier ones.")
     drift_baseline_periods: int = Field(default=4, ge=1, description="Periods whose uptake sets the in-control level.")
+    drift_baseline: Literal["shrunk", "site"] = Field(
+        default="shrunk", description="In-control level: each site's baseline shrunk toward the study-wide baseline "
+                                      "of the arm (empirical Bayes), or the site's own baseline.")
     drift_odds_ratio: float = Field(default=3.0, gt=1.0, description="Shift in the odds of uptake the CUSUM is tuned to detect.")
     drift_arl0: float = Field(default=2000.0, gt=10.0, description="In-control average run length, in participants.")
     srm_p_value: float = Field(default=0.001, gt=0, lt=1, description="Sample-ratio mismatch alarm level (common practice).")
