@@ -94,6 +94,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--config", type=Path, help="study configuration (TOML); default: the stored one")
     _orchestration_args(p)
 
+    p = sub.add_parser("reproduce", help="recompute a stored run and compare",
+                       description="Recompute a run from its run_id (same as-of date, configuration, input batches "
+                                   "and previous run) without writing, and report whether every table matches.")
+    _warehouse_arg(p)
+    p.add_argument("--run", required=True, help="run id to reproduce")
+
     p = sub.add_parser("runs", help="list the runs", description="List monitoring runs, newest first.")
     _warehouse_arg(p)
     p.add_argument("--limit", type=int, default=20)
@@ -245,6 +251,15 @@ def cmd_demo(args) -> int:
 
 
 def _run(warehouse: Path, as_of, config_path, orchestrated: bool, runner, dask_address, quiet: bool):
+    if sys.stdout.isatty() and not quiet:
+        from rich.console import Console
+        what = "Prefect flow" if orchestrated else "in-process run"
+        with Console().status(f"computing the monitoring run ({what}) ..."):
+            return _run_now(warehouse, as_of, config_path, orchestrated, runner, dask_address)
+    return _run_now(warehouse, as_of, config_path, orchestrated, runner, dask_address)
+
+
+def _run_now(warehouse: Path, as_of, config_path, orchestrated: bool, runner, dask_address):
     from schemas.config import load_config
     config = load_config(config_path) if config_path else None
     if orchestrated:
@@ -306,6 +321,16 @@ def _latest_run(con, run: str | None) -> str:
     if row is None:
         raise UsageError("no finished run yet; compute one with 'takeup run'")
     return row[0]
+
+
+def cmd_reproduce(args) -> int:
+    from pipeline.reproduce import reproduce_run
+    r = reproduce_run(_warehouse(args), args.run)
+    for table, diff in r.max_abs_diff.items():
+        extra = f" ({r.mismatched[table]})" if table in r.mismatched else ""
+        print(f"  {table:18s} max |difference| {diff:.3g}{extra}")
+    print(f"run {r.run_id}: " + ("reproduced exactly" if r.identical else "NOT reproduced"))
+    return EXIT_OK if r.identical else EXIT_DATA
 
 
 def cmd_runs(args) -> int:
@@ -378,7 +403,7 @@ def cmd_serve(args) -> int:
 
 
 COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd_run, "runs": cmd_runs,
-            "alerts": cmd_alerts, "export": cmd_export, "report": cmd_report, "serve": cmd_serve}
+            "alerts": cmd_alerts, "reproduce": cmd_reproduce, "export": cmd_export, "report": cmd_report, "serve": cmd_serve}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -386,6 +411,7 @@ def main(argv: list[str] | None = None) -> int:
     from pipeline.export import ExportError
     from pipeline.ingest import IngestError
     from pipeline.report.data import ReportError
+    from pipeline.reproduce import ReproduceError
     from pipeline.warehouse import WarehouseError
     from schemas.config import ConfigError
     parser = build_parser()
@@ -396,7 +422,7 @@ def main(argv: list[str] | None = None) -> int:
     except (ConfigError, UsageError) as exc:
         print(f"takeup {args.command}: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    except (WarehouseError, FileNotFoundError, ExportError, ReportError, RunnerError) as exc:
+    except (WarehouseError, FileNotFoundError, ExportError, ReportError, RunnerError, ReproduceError) as exc:
         print(f"takeup {args.command}: {exc}", file=sys.stderr)
         return EXIT_USAGE
     except IngestError as exc:
