@@ -199,7 +199,7 @@ def participant_frame(con: duckdb.DuckDBPyConnection, site_id: str, outcome: str
     params = {f"cov{i}": name for i, name in enumerate(covariates, start=1)}
     select_cov = (", " + cov_sql) if covariates else ""
     sql = f"""
-        SELECT s.participant_key, any_value(s.z) AS z, any_value(s.d) AS d, any_value(s.y) AS y,
+        SELECT any_value(s.z) AS z, any_value(s.d) AS d, any_value(s.y) AS y,
                any_value(s.cluster_id) AS cluster_id {select_cov}
         FROM _sample s LEFT JOIN assignment_covariates c
           ON c.site_id = s.site_id AND c.participant_key = s.participant_key

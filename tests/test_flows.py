@@ -146,9 +146,10 @@ def test_dask_local_cluster_equals_local_runner(prefect_api, small_warehouse):
 def test_ingest_flow_validates_in_parallel_and_loads(prefect_api, tmp_path, monkeypatch):
     from flows.ingest import ingest_flow
     from pipeline.warehouse import init_warehouse
+    from schemas.config import parse_config
     monkeypatch.setenv("TAKEUP_ID_KEY", TEST_KEY)
     path = tmp_path / "w.duckdb"
-    init_warehouse(path)
+    init_warehouse(path, parse_config({"covariates": ["age"]}))
     files = _site_files(tmp_path, n_sites=2, n=20)
     bad = tmp_path / "bad.csv"
     bad.write_text("site_id,participant_id,arm,assigned_on\nS1,x1,oops,2026-03-02\n")
