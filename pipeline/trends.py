@@ -83,7 +83,7 @@ ARMS_BY_Z: tuple[str, str] = ("control", "treatment")
 #: than 1e-3 and left the in-control ARL unchanged to 5 digits (checked when
 #: this module was written).  The chain error bound is ``k * rel_tol * max(u, d)``
 #: after ``k`` large steps (see the cusum module), far below any practical h.
-DESIGN_REL_TOL = 1e-5
+DESIGN_REL_TOL = 1e-4   # rational approximation of the score grid; designs stay at or above the target ARL0
 
 _COUNT_COLUMNS = ("n_assigned", "n_observed", "n_taken_up")
 
@@ -277,9 +277,11 @@ def _empty_drift() -> DriftResult:
                        path=_readonly(np.zeros((0, 0))), notes=())
 
 
-#: in-control levels are rounded to this step before designing a chart, so a run designs a
-#: few dozen charts at most whatever the number of sites (the design is cached per level)
-P0_STEP = 0.0025
+#: in-control levels are rounded to this step on the logit scale (odds within +/-5%) before a
+#: chart is designed: the chart is then exactly designed for its rounded level, the rounding is
+#: far below the sampling error of a baseline estimate, and a run designs a few dozen charts at
+#: most whatever the number of sites (each design is cached per level within the process)
+LOGIT_STEP = 0.1
 
 
 @functools.lru_cache(maxsize=4096)
@@ -359,7 +361,9 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
         keep = np.isfinite(shrunk.rate) & np.isfinite(p0)
         p0 = np.where(keep, np.clip(shrunk.rate, lo, 1.0 - lo), p0)
     ok = np.isfinite(p0)
-    p0 = np.where(ok, np.clip(np.round(p0 / P0_STEP) * P0_STEP, P0_STEP, 1.0 - P0_STEP), np.nan)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        logit = np.log(p0) - np.log1p(-p0)
+        p0 = np.where(ok, 1.0 / (1.0 + np.exp(-np.round(logit / LOGIT_STEP) * LOGIT_STEP)), np.nan)
     is_up = (np.arange(n_series) % 2) == 0          # control rows: upward chart
     ors = np.where(is_up, float(odds_ratio), 1.0 / float(odds_ratio))
     p1 = shifted_rate(p0, ors)
