@@ -284,6 +284,14 @@ def _empty_drift() -> DriftResult:
 LOGIT_STEP = 0.1
 
 
+def round_level(p):
+    """In-control level rounded to :data:`LOGIT_STEP` on the logit scale (NaN stays NaN)."""
+    p = np.asarray(p, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        logit = np.log(p) - np.log1p(-p)
+        return np.where(np.isfinite(logit), 1.0 / (1.0 + np.exp(-np.round(logit / LOGIT_STEP) * LOGIT_STEP)), np.nan)
+
+
 @functools.lru_cache(maxsize=4096)
 def _design_h(p0: float, odds_ratio: float, target_arl0: float) -> tuple[float, str]:
     d = design_cusum(np.array([p0]), shift_odds_ratio=np.array([odds_ratio]), target_arl0=float(target_arl0),
@@ -361,9 +369,7 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
         keep = np.isfinite(shrunk.rate) & np.isfinite(p0)
         p0 = np.where(keep, np.clip(shrunk.rate, lo, 1.0 - lo), p0)
     ok = np.isfinite(p0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        logit = np.log(p0) - np.log1p(-p0)
-        p0 = np.where(ok, 1.0 / (1.0 + np.exp(-np.round(logit / LOGIT_STEP) * LOGIT_STEP)), np.nan)
+    p0 = np.where(ok, round_level(p0), np.nan)
     is_up = (np.arange(n_series) % 2) == 0          # control rows: upward chart
     ors = np.where(is_up, float(odds_ratio), 1.0 / float(odds_ratio))
     p1 = shifted_rate(p0, ors)

@@ -19,7 +19,7 @@ import pytest
 
 from pipeline.monitoring.cusum import shifted_rate
 from pipeline.run_inputs import RunContext, RunInputs
-from pipeline.trends import compute_trends, detect_drift
+from pipeline.trends import compute_trends, detect_drift, round_level
 from schemas.config import StudyConfig
 from schemas.results import UptakeTrendRow
 
@@ -161,7 +161,8 @@ def test_cusum_path_in_cohort_rows_matches_recursion_and_detects_planted_rise():
     orr = make_ctx().config.alerts.drift_odds_ratio
     ctrl = cohort[cohort.z == 0].sort_values("period_start")
     x, n = ctrl.n_taken_up.to_numpy(float), ctrl.n_observed.to_numpy(float)
-    p0 = x[:k].sum() / n[:k].sum()                     # pooled baseline rate (no clipping needed here)
+    # pooled baseline rate (no clipping needed; one site, so no shrinkage), rounded as documented
+    p0 = float(round_level(x[:k].sum() / n[:k].sum()))
     p1 = orr * p0 / (1 - p0 + orr * p0)                # odds ratio shift, by hand
     path = cusum_by_hand(x[k:], n[k:], p0, p1)
     i = drift.index("A", "control")
@@ -195,8 +196,10 @@ def test_constant_uptake_at_baseline_level_never_charts_above_zero():
     np.testing.assert_array_equal(drift.statistic, [0.0, 0.0])
     assert not drift.signalled.any()
     # p0 is the pooled baseline rate; p1 shifts the odds by 3 up (control) and down (treatment)
-    np.testing.assert_allclose(drift.p0, [0.1, 0.7], atol=1e-12)
-    np.testing.assert_allclose(drift.p1, shifted_rate(np.array([0.1, 0.7]), np.array([3.0, 1 / 3])), atol=1e-12)
+    level = round_level(np.array([0.1, 0.7]))      # within 5% in odds of the baseline, as documented
+    np.testing.assert_allclose(drift.p0, level, atol=1e-12)
+    assert np.all(np.abs(np.log(level / (1 - level)) - np.log(np.array([0.1, 0.7]) / [0.9, 0.3])) <= 0.05 + 1e-12)
+    np.testing.assert_allclose(drift.p1, shifted_rate(level, np.array([3.0, 1 / 3])), atol=1e-12)
     # threshold chosen for ARL0 >= 2000: positive and finite
     assert np.all(np.isfinite(drift.h)) and np.all(drift.h > 0)
 
