@@ -150,7 +150,7 @@ def site_influence(effects, variances, method: str = "reml") -> InfluenceResult:
     if k >= 2:
         for j in range(k):  # one tau2 fit per left-out site (see Notes)
             sub = np.arange(k) != j
-            r = combine(y_ok[sub], v_ok[sub], method=method)
+            r = combine(y_ok[sub], v_ok[sub], method=method, summaries=False)
             loo_est[idx[j]], loo_se[idx[j]], loo_tau2[idx[j]] = r.estimate, r.se, r.tau2
             loo_converged &= r.converged
         if not loo_converged:

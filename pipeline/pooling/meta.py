@@ -18,7 +18,7 @@ import difflib
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special, stats
 
 __all__ = [
     "MetaResult", "combine", "resolve_method", "clean_inputs", "generalised_q", "reml_score",
@@ -354,6 +354,7 @@ def combine(
     *,
     hksj_truncate: bool = False,
     pi_method: str = "t",
+    summaries: bool = True,
 ) -> MetaResult:
     """Pool per-site effects by inverse-variance weighting with between-site variance.
 
@@ -387,6 +388,9 @@ def combine(
           (the interval reported alongside Hartung-Knapp inference in
           Viechtbauer 2010); needs ``k >= 2``.
         * ``"z"``: normal quantile and ``s = se``; needs ``k >= 2``.
+    summaries : bool, keyword-only
+        ``False`` skips the HKSJ, Q-profile and prediction intervals (NaN) --
+        for refits that need only the estimate, its SE and tau2 (leave-one-out).
 
     Returns
     -------
@@ -482,7 +486,7 @@ def combine(
         unit = float(np.sqrt(np.median(v)))
         try:
             res = _combine_clean((y - shift) / unit, v / unit**2, method, level,
-                                 hksj_truncate, pi_method, notes)
+                                 hksj_truncate, pi_method, notes, summaries)
         except ArithmeticError:  # OverflowError from float ** with absurd inputs
             notes.append("numerical overflow: variances span too many orders of magnitude")
             return _nan_result(method, level, pi_method, notes, n_sites=k)
@@ -520,19 +524,19 @@ def _unscale(res: MetaResult, shift: float, unit: float) -> MetaResult:
     return replace(res, note="; ".join(notes), **changes)
 
 
-def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes) -> MetaResult:
+def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes, summaries=True) -> MetaResult:
     nan = float("nan")
     k = int(y.size)
     df = k - 1
     alpha = 1.0 - level
-    z = float(stats.norm.ppf(1.0 - alpha / 2.0))
+    z = float(special.ndtri(1.0 - alpha / 2.0))
     label = _METHOD_LABELS[method]
 
     # ---- fixed-effect quantities (weights 1/v) --------------------------
     w_fe = 1.0 / v
     mu_fe, sw_fe = _weighted_mean(y, w_fe)
     q = float(np.dot(w_fe, (y - mu_fe) ** 2)) if k > 1 else nan
-    q_p = float(stats.chi2.sf(q, df)) if k > 1 else nan
+    q_p = float(special.chdtrc(df, q)) if k > 1 else nan
 
     # ---- tau2 -------------------------------------------------------------
     converged = True
@@ -561,12 +565,12 @@ def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes) -> Meta
     ci = (mu - z * se, mu + z * se)
 
     # ---- HKSJ ---------------------------------------------------------------
-    if k > 1 and not np.isnan(tau2):
+    if k > 1 and not np.isnan(tau2) and summaries:
         scale = float(np.dot(w, (y - mu) ** 2)) / df
         if hksj_truncate:
             scale = max(1.0, scale)
         hksj_se = float(np.sqrt(scale / sw))
-        t_crit = float(stats.t.ppf(1.0 - alpha / 2.0, df))
+        t_crit = float(special.stdtrit(df, 1.0 - alpha / 2.0))
         hksj_ci = (mu - t_crit * hksj_se, mu + t_crit * hksj_se)
         if hksj_se == 0.0:
             notes.append("all site estimates equal the pooled estimate: HKSJ SE is 0")
@@ -588,14 +592,16 @@ def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes) -> Meta
         h2 = (tau2 + s2) / s2
 
     # ---- Q-profile interval for tau2 ------------------------------------------
-    if method == "fixed":
+    if not summaries:          # leave-one-out refits need only estimate, SE and tau2
+        tau2_ci = (nan, nan)
+    elif method == "fixed":
         tau2_ci = (nan, nan)
         notes.append("fixed-effect model: tau2 = 0 by assumption, no tau2 interval")
     elif k == 1:
         tau2_ci = (nan, nan)
     else:
-        hi_q = float(stats.chi2.ppf(1.0 - alpha / 2.0, df))
-        lo_q = float(stats.chi2.ppf(alpha / 2.0, df))
+        hi_q = float(special.chdtri(df, alpha / 2.0))
+        lo_q = float(special.chdtri(df, 1.0 - alpha / 2.0))
         t_lo, ok_lo = _root_of_q(y, v, hi_q)
         t_hi, ok_hi = _root_of_q(y, v, lo_q)
         tau2_ci = (t_lo, t_hi)
@@ -606,18 +612,20 @@ def _combine_clean(y, v, method, level, hksj_truncate, pi_method, notes) -> Meta
 
     # ---- prediction interval ---------------------------------------------------
     pi = (nan, nan)
-    if np.isnan(tau2):
+    if not summaries:
+        pass
+    elif np.isnan(tau2):
         notes.append("prediction interval undefined: tau2 not estimable")
     elif pi_method == "t":
         if k < 3:
             notes.append(f"prediction interval needs at least 3 sites (t with k - 2 df); k = {k}")
         else:
-            c = float(stats.t.ppf(1.0 - alpha / 2.0, k - 2))
+            c = float(special.stdtrit(k - 2, 1.0 - alpha / 2.0))
             half = c * float(np.sqrt(tau2 + se**2))
             pi = (mu - half, mu + half)
     elif pi_method == "hksj":
         if np.isfinite(hksj_se):
-            c = float(stats.t.ppf(1.0 - alpha / 2.0, df))
+            c = float(special.stdtrit(df, 1.0 - alpha / 2.0))
             half = c * float(np.sqrt(tau2 + hksj_se**2))
             pi = (mu - half, mu + half)
     else:  # "z"
