@@ -85,7 +85,7 @@ def _period_start_sql(col: str, start_param: str = "$origin") -> str:
 
 def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[pd.DataFrame, pd.DataFrame]:
     period = ctx.config.trends.period_days
-    origin = con.execute("SELECT min(assigned_on) FROM _sample").fetchone()[0]
+    origin = con.execute("SELECT min(assigned_on) FROM _participants").fetchall()[0][0]
     if origin is None:
         empty = pd.DataFrame(columns=["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"])
         return empty, empty.copy()
@@ -94,39 +94,24 @@ def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[pd.D
         origin = origin - timedelta(days=origin.weekday())
     params = {"origin": origin, "period_days": period}
     cohort = con.execute(f"""
-        WITH p AS (SELECT DISTINCT site_id, participant_key, z, d, uptake_observed, assigned_on FROM _sample)
         SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
                count(*) AS n_assigned, count(*) FILTER (WHERE uptake_observed) AS n_observed,
                CAST(sum(d) AS BIGINT) AS n_taken_up
-        FROM p GROUP BY ALL ORDER BY ALL
+        FROM _participants GROUP BY ALL ORDER BY ALL
     """, params).df()
     # calendar basis: status at the end of each period among those assigned by then.  Computed from
     # per-period counts of assignments, first uptake reports and first "took up" reports, then
     # cumulated over the (small) period grid: no participant x period join.
     events = con.execute(f"""
-        WITH p AS (SELECT DISTINCT site_id, participant_key, z, assigned_on FROM _sample),
-        first_up AS (
-            SELECT site_id, participant_key, min(observed_on) FILTER (WHERE took_up) AS first_yes,
-                   min(observed_on) AS first_obs
-            FROM uptake_events
-            WHERE observed_on <= $as_of
-              AND batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $cutoff)
-            GROUP BY ALL
-        ), j AS (
-            SELECT p.site_id, p.z, p.assigned_on,
-                   CASE WHEN f.first_obs IS NOT NULL THEN greatest(f.first_obs, p.assigned_on) END AS first_obs,
-                   CASE WHEN f.first_yes IS NOT NULL THEN greatest(f.first_yes, p.assigned_on) END AS first_yes
-            FROM p LEFT JOIN first_up f USING (site_id, participant_key)
-        )
         SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
-               count(*) AS n_assigned, 0 AS n_observed, 0 AS n_taken_up FROM j GROUP BY ALL
+               count(*) AS n_assigned, 0 AS n_observed, 0 AS n_taken_up FROM _participants GROUP BY ALL
         UNION ALL
         SELECT site_id, z, CAST({_period_start_sql('first_obs')} AS DATE), 0, count(*), 0
-        FROM j WHERE first_obs IS NOT NULL GROUP BY ALL
+        FROM _participants WHERE first_obs IS NOT NULL GROUP BY ALL
         UNION ALL
         SELECT site_id, z, CAST({_period_start_sql('first_yes')} AS DATE), 0, 0, count(*)
-        FROM j WHERE first_yes IS NOT NULL GROUP BY ALL
-    """, {**params, "as_of": ctx.as_of, "cutoff": ctx.data_cutoff}).df()
+        FROM _participants WHERE first_yes IS NOT NULL GROUP BY ALL
+    """, params).df()
     calendar = _cumulate_calendar(events, origin, ctx.as_of, period)
     return cohort, calendar
 
@@ -180,15 +165,11 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
     fingerprint, n_batches = input_fingerprint(con, ctx.data_cutoff)
     build_participants(con, spec, outcomes)
     try:
-        sites = tuple(r[0] for r in con.execute("SELECT DISTINCT site_id FROM _sample ORDER BY 1").fetchall())
-        if not outcomes:
-            sites = tuple(r[0] for r in con.execute(
-                "SELECT DISTINCT site_id FROM assignments WHERE assigned_on <= $a ORDER BY 1",
-                {"a": ctx.as_of}).fetchall())
+        sites = tuple(r[0] for r in con.execute("SELECT DISTINCT site_id FROM _participants ORDER BY 1").fetchall())
         moments = site_outcome_moments(con)
         clusters = cluster_moments(con) if config.randomisation_unit == "cluster" else None
         cells = covariate_cells(con, spec, list(config.covariates))
-        cohort, calendar = _trend_counts(con, ctx) if outcomes else _trend_counts_no_outcome(con, ctx, spec)
+        cohort, calendar = _trend_counts(con, ctx)
         activity = _site_activity(con, ctx)
         prev_id, prev = _previous_alerts(con, ctx)
         frames = {}
@@ -199,13 +180,9 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
                                                                 ctx.data_cutoff)
     finally:
         con.execute("DROP TABLE IF EXISTS _sample")
+        con.execute("DROP TABLE IF EXISTS _participants")
     return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,
                      covariate_cells=cells, cohort_counts=cohort, calendar_counts=calendar,
                      site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,
                      n_batches=n_batches, input_fingerprint=fingerprint, participant_frames=frames)
 
-
-def _trend_counts_no_outcome(con, ctx: RunContext, spec: SampleSpec):
-    """Trends when no outcome is declared or present: build the sample with a placeholder outcome."""
-    build_participants(con, spec, ["__uptake_only__"])
-    return _trend_counts(con, ctx)

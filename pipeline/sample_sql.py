@@ -61,38 +61,64 @@ def outcome_names(con: duckdb.DuckDBPyConnection, config: StudyConfig) -> list[s
     return [r[0] for r in con.execute("SELECT DISTINCT outcome FROM outcome_measurements ORDER BY 1").fetchall()]
 
 
-def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcomes: list[str]) -> None:
-    """Materialise temp table ``_sample``: one row per assigned participant x outcome.
+def _batch_filter(con: duckdb.DuckDBPyConnection, spec: SampleSpec, alias: str) -> str:
+    """SQL restricting ``alias`` to batches received by the data cutoff ('' when every batch is)."""
+    later = con.execute("SELECT count(*) FROM batches WHERE received_at > $c", {"c": spec.data_cutoff}).fetchone()[0]
+    if not later:
+        return ""
+    return (f" AND {alias}.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' "
+            f"AND received_at <= $data_cutoff)")
 
-    Columns: site_id, participant_key, cluster_id, assigned_on, z, d, uptake_observed, outcome, y.
+
+def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcomes: list[str]) -> None:
+    """Materialise the temp tables of the analysis sample.
+
+    ``_participants``: one row per assigned participant (site_id, participant_key, cluster_id,
+    assigned_on, z, d, uptake_observed, first_obs, first_yes — the first uptake report and the
+    first report of uptake, for the calendar trends).
+    ``_sample``: one row per assigned participant x outcome (site_id, cluster_id, z, d, outcome, y).
+
+    Joins use ``participant_key`` alone: the pseudonym already encodes the site.
     """
     agg = _AGG[spec.rule]
+    fa, fu, fo = (_batch_filter(con, spec, t) for t in ("t", "t", "t"))
+    con.execute(f"""
+        CREATE OR REPLACE TEMP TABLE _participants AS
+        WITH u AS (
+            SELECT t.participant_key, bool_or(t.took_up) AS took_up, min(t.observed_on) AS first_obs,
+                   min(t.observed_on) FILTER (WHERE t.took_up) AS first_yes
+            FROM uptake_events t WHERE t.observed_on <= $as_of{fu}
+            GROUP BY t.participant_key
+        )
+        SELECT t.site_id, t.participant_key, t.cluster_id, t.assigned_on,
+               CASE WHEN t.arm = 'treatment' THEN 1 ELSE 0 END AS z,
+               CASE WHEN coalesce(u.took_up, FALSE) THEN 1.0 ELSE 0.0 END AS d,
+               u.took_up IS NOT NULL AS uptake_observed,
+               CASE WHEN u.first_obs IS NOT NULL THEN greatest(u.first_obs, t.assigned_on) END AS first_obs,
+               CASE WHEN u.first_yes IS NOT NULL THEN greatest(u.first_yes, t.assigned_on) END AS first_yes
+        FROM assignments t LEFT JOIN u USING (participant_key)
+        WHERE t.assigned_on <= $as_of{fa}
+    """, spec.params() if fa or fu else {"as_of": spec.as_of})
+    if not outcomes:
+        con.execute("CREATE OR REPLACE TEMP TABLE _sample AS SELECT site_id, participant_key, cluster_id, z, d, "
+                    "uptake_observed, CAST(NULL AS VARCHAR) AS outcome, CAST(NULL AS DOUBLE) AS y "
+                    "FROM _participants WHERE FALSE")
+        return
     con.execute(f"""
         CREATE OR REPLACE TEMP TABLE _sample AS
-        WITH ok_batches AS (
-            SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $data_cutoff
-        ), a AS (
-            SELECT site_id, participant_key, cluster_id, assigned_on, CASE WHEN arm = 'treatment' THEN 1 ELSE 0 END AS z
-            FROM assignments WHERE assigned_on <= $as_of AND batch_id IN (SELECT batch_id FROM ok_batches)
-        ), u AS (
-            SELECT site_id, participant_key, bool_or(took_up) AS took_up
-            FROM uptake_events WHERE observed_on <= $as_of AND batch_id IN (SELECT batch_id FROM ok_batches)
-            GROUP BY site_id, participant_key
-        ), o AS (
-            SELECT m.site_id, m.participant_key, m.outcome, {agg} AS y
-            FROM outcome_measurements m JOIN a USING (site_id, participant_key)
-            WHERE m.measured_on <= $as_of AND m.batch_id IN (SELECT batch_id FROM ok_batches)
-              AND date_diff('day', a.assigned_on, m.measured_on) BETWEEN $min_days AND $max_days
-              AND list_contains($outcomes, m.outcome)
-            GROUP BY m.site_id, m.participant_key, m.outcome
+        WITH o AS (
+            SELECT t.participant_key, t.outcome, {agg.replace('m.', 't.')} AS y
+            FROM outcome_measurements t JOIN _participants a USING (participant_key)
+            WHERE t.measured_on <= $as_of{fo}
+              AND date_diff('day', a.assigned_on, t.measured_on) BETWEEN $min_days AND $max_days
+              AND list_contains($outcomes, t.outcome)
+            GROUP BY t.participant_key, t.outcome
         ), names AS (SELECT unnest($outcomes) AS outcome)
-        SELECT a.site_id, a.participant_key, a.cluster_id, a.assigned_on, a.z,
-               CASE WHEN coalesce(u.took_up, FALSE) THEN 1.0 ELSE 0.0 END AS d,
-               u.took_up IS NOT NULL AS uptake_observed, names.outcome, o.y
-        FROM a CROSS JOIN names
-        LEFT JOIN u USING (site_id, participant_key)
-        LEFT JOIN o ON o.site_id = a.site_id AND o.participant_key = a.participant_key AND o.outcome = names.outcome
-    """, {**spec.params(), "min_days": spec.min_days, "max_days": spec.max_days, "outcomes": list(outcomes)})
+        SELECT a.site_id, a.participant_key, a.cluster_id, a.z, a.d, a.uptake_observed, names.outcome, o.y
+        FROM _participants a CROSS JOIN names
+        LEFT JOIN o ON o.participant_key = a.participant_key AND o.outcome = names.outcome
+    """, {**(spec.params() if fo else {"as_of": spec.as_of}), "min_days": spec.min_days,
+          "max_days": spec.max_days, "outcomes": list(outcomes)})
 
 
 def site_outcome_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
@@ -132,9 +158,8 @@ def covariate_cells(con: duckdb.DuckDBPyConnection, spec: SampleSpec, covariates
     if not covariates:
         return pd.DataFrame(columns=["site_id", "covariate", "z", "d", "n", "sum_x"])
     return con.execute("""
-        WITH p AS (SELECT DISTINCT site_id, participant_key, z, d FROM _sample)
         SELECT p.site_id, c.covariate, p.z, CAST(p.d AS INTEGER) AS d, count(c.value) AS n, coalesce(sum(c.value), 0) AS sum_x
-        FROM p JOIN assignment_covariates c USING (site_id, participant_key)
+        FROM _participants p JOIN assignment_covariates c USING (participant_key)
         WHERE list_contains($covs, c.covariate) AND c.value IS NOT NULL
           AND c.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $data_cutoff)
         GROUP BY ALL ORDER BY ALL
@@ -202,7 +227,7 @@ def participant_frame(con: duckdb.DuckDBPyConnection, site_id: str, outcome: str
         SELECT any_value(s.z) AS z, any_value(s.d) AS d, any_value(s.y) AS y,
                any_value(s.cluster_id) AS cluster_id {select_cov}
         FROM _sample s LEFT JOIN assignment_covariates c
-          ON c.site_id = s.site_id AND c.participant_key = s.participant_key
+          ON c.participant_key = s.participant_key
          AND c.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $cutoff)
         WHERE s.site_id = $site AND s.outcome = $outcome AND s.y IS NOT NULL
         GROUP BY s.participant_key ORDER BY s.participant_key
