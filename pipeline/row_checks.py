@@ -110,6 +110,12 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
     registry check) and ``$outcomes`` (VARCHAR[]; empty = any outcome name).
     """
     specs = columns_of(INPUT_MODELS[kind])
+    # inner level: every raw column trimmed once ("__t_<name>"); the outer level parses and checks
+    inner = [f"{_raw_text(c, t)} AS {_q('__t_' + c)}" for c, t in columns.items()]
+
+    def trimmed(col: str) -> str:
+        return _q("__t_" + col) if col in columns else "CAST(NULL AS VARCHAR)"
+
     select: list[str] = ['"_row"']
     checks: list[Check] = []
     value_columns: list[str] = []
@@ -117,12 +123,12 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
         name = spec.name
         present = name in columns
         dtype = columns.get(name, "VARCHAR")
-        raw = _raw_text(name, dtype) if present else "CAST(NULL AS VARCHAR)"
+        raw = trimmed(name) if present else "CAST(NULL AS VARCHAR)"
         raw_col = f"_raw_{name}"
         select.append(f"{raw} AS {_q(raw_col)}" if not spec.extra.get("identifier") else f"{raw} IS NULL AS {_q(raw_col + '_null')}")
         if spec.extra.get("identifier"):
             # the raw identifier is hashed here and never copied further
-            site_raw = _raw_text("site_id", columns.get("site_id", "VARCHAR"))
+            site_raw = trimmed("site_id")
             select.append(f"CASE WHEN {raw} IS NOT NULL AND {site_raw} IS NOT NULL "
                           f"THEN {id_expr_sql(site_raw, raw)} END AS participant_key")
             checks.append(Check(name, "missing_id", f"{_q(raw_col + '_null')}", "NULL"))
@@ -162,8 +168,7 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
             checks.append(Check(name, "unknown_outcome",
                                 f"{notnull} AND len($outcomes) > 0 AND NOT list_contains($outcomes, {_q(name)})", shown))
     for cov in covariates:
-        dtype = columns[cov]
-        raw = _raw_text(cov, dtype)
+        raw = trimmed(cov)
         raw_col = f"_raw_cov_{cov}"
         parsed = f"_cov_{cov}"
         select.append(f"{raw} AS {_q(raw_col)}")
@@ -171,7 +176,7 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
         shown = f"left({_q(raw_col)}, 200)"
         checks.append(Check(cov, "not_a_number", f"{_q(raw_col)} IS NOT NULL AND {_q(parsed)} IS NULL", shown))
         checks.append(Check(cov, "not_finite", f"NOT isfinite({_q(parsed)})", shown))
-    sql = "SELECT " + ", ".join(select) + " FROM _stage"
+    sql = "SELECT " + ", ".join(select) + " FROM (SELECT *, " + ", ".join(inner) + " FROM _stage)"
     return ParsePlan(kind, sql, tuple(checks), tuple(value_columns), tuple(covariates))
 
 
