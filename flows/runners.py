@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
+from pipeline.errors import RunnerError  # noqa: F401  (re-exported)
+
 from schemas.config import StudyConfig
 
 __all__ = ["make_task_runner", "RunnerError"]
 
 
-class RunnerError(ValueError):
-    """Bad runner options (usage error)."""
 
 
 def make_task_runner(config: StudyConfig | None, runner: str | None = None, dask_address: str | None = None):

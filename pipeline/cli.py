@@ -407,12 +407,8 @@ COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd
 
 
 def main(argv: list[str] | None = None) -> int:
-    from flows.runners import RunnerError
-    from pipeline.export import ExportError
-    from pipeline.ingest import IngestError
-    from pipeline.report.data import ReportError
-    from pipeline.reproduce import ReproduceError
-    from pipeline.warehouse import WarehouseError
+    from pipeline.errors import (ExportError, IngestError, ReportError, ReproduceError, RunnerError,
+                                 WarehouseError)
     from schemas.config import ConfigError
     parser = build_parser()
     args = parser.parse_args(argv)

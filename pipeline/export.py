@@ -22,6 +22,8 @@ the values unchanged.
 
 from __future__ import annotations
 
+from pipeline.errors import ExportError  # noqa: F401  (re-exported)
+
 import os
 import secrets
 from pathlib import Path
@@ -41,8 +43,6 @@ FORMATS: dict[str, str] = {"parquet": "parquet", "csv": "csv"}
 FORMULA_PREFIXES: tuple[str, ...] = ("=", "+", "-", "@", "\t", "\r")
 
 
-class ExportError(RuntimeError):
-    """The export cannot be made as asked (no finished run, unknown run)."""
 
 
 def _quote(identifier: str) -> str:

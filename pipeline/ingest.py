@@ -17,6 +17,8 @@ assignment arrives, so arrival order never loses data.
 
 from __future__ import annotations
 
+from pipeline.errors import IngestError  # noqa: F401  (re-exported)
+
 import hashlib
 from dataclasses import dataclass, field
 from datetime import date, datetime, timezone
@@ -43,8 +45,6 @@ _CONFLICT_REASON = {"assignment": "conflicting_assignment", "uptake": "conflicti
                     "outcome": "conflicting_outcome"}
 
 
-class IngestError(ValueError):
-    """A file that cannot be ingested at all (nothing of it is stored)."""
 
 
 @dataclass(frozen=True)

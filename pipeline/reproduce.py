@@ -10,6 +10,8 @@ every result table in memory and reports the largest difference per table.
 
 from __future__ import annotations
 
+from pipeline.errors import ReproduceError  # noqa: F401  (re-exported)
+
 import json
 import math
 from dataclasses import dataclass
@@ -28,8 +30,6 @@ _TABLES = ("site_estimates", "complier_profile", "pooled_estimates", "subgroup_t
            "uptake_trends", "alerts")
 
 
-class ReproduceError(RuntimeError):
-    """The run cannot be reproduced (unknown run, configuration missing, inputs changed)."""
 
 
 @dataclass(frozen=True)

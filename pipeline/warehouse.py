@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pipeline.errors import WarehouseError  # noqa: F401  (re-exported)
+
 import os
 from contextlib import contextmanager
 from datetime import datetime, timezone
@@ -23,8 +25,6 @@ __all__ = [
 SCHEMA_VERSION = "1"
 
 
-class WarehouseError(RuntimeError):
-    """A warehouse that cannot be used as asked (missing, wrong key, locked)."""
 
 
 def default_warehouse_path() -> Path:

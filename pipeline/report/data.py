@@ -7,6 +7,8 @@ query binds its values as parameters.
 
 from __future__ import annotations
 
+from pipeline.errors import ReportError  # noqa: F401  (re-exported)
+
 import json
 from dataclasses import dataclass
 from datetime import date, datetime
@@ -29,8 +31,6 @@ _SEVERITY_ORDER = {"critical": 0, "warning": 1, "info": 2}
 _METHOD_ORDER = {"fixed": 0, "dl": 1, "reml": 2, "pm": 3}
 
 
-class ReportError(RuntimeError):
-    """The report cannot be produced (no run yet, unknown run)."""
 
 
 def is_uptake_rule(rule: pd.Series) -> pd.Series:
