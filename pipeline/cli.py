@@ -307,7 +307,7 @@ def _print_table(frame, quiet: bool = False) -> None:
             t.add_row(*["" if v is None or (isinstance(v, float) and v != v) else str(v) for v in row])
         Console().print(t)
     else:
-        print(frame.to_string(index=False))
+        print(frame.astype(object).where(frame.notna(), "").to_string(index=False))
 
 
 def _latest_run(con, run: str | None) -> str:
