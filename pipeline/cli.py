@@ -307,7 +307,13 @@ def _print_table(frame, quiet: bool = False) -> None:
             t.add_row(*["" if v is None or (isinstance(v, float) and v != v) else str(v) for v in row])
         Console().print(t)
     else:
-        print(frame.astype(object).where(frame.notna(), "").to_string(index=False))
+        shown = frame.copy()
+        for c in shown.columns:
+            if shown[c].dtype.kind == "f":
+                shown[c] = [("" if v != v else f"{v:.4g}") for v in shown[c]]
+            else:
+                shown[c] = [("" if v is None or v != v else v) for v in shown[c]]
+        print(shown.to_string(index=False))
 
 
 def _latest_run(con, run: str | None) -> str:
