@@ -75,9 +75,12 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
         if no_outcomes:
             status = "no_outcomes" if status in ("ok", "negative_first_stage", "constant_outcome",
                                                  "zero_cace_variance") else status
+            # keep the first-stage notes only: the first-stage-only moments carry Y := 0, so their
+            # outcome notes (constant outcome, vanishing residuals) say nothing about this site
+            fs_notes = [p for p in str(src.note[i] or "").split("; ")
+                        if p and "ITT" not in p and "CACE" not in p and "outcome" not in p]
             note = _join_notes("no outcome measurements in the follow-up window yet: ITT and CACE are "
-                               "not available; uptake and first stage use all assigned participants",
-                               src.note[i] if src.status[i] not in ("ok",) else None)
+                               "not available; uptake and first stage use all assigned participants", *fs_notes)
         ar_kind = str(ar.kind[i])
         ar_ok = (not no_outcomes) and ar_kind in _AR_KINDS
         f_stat = clean(src.first_stage_f[i])
