@@ -12,7 +12,7 @@ export PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS ?= 120
 
 $(PY):
 	$(PYTHON) -m venv $(VENV)
-	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet --upgrade pip "setuptools>=77" wheel
 
 install: $(PY)
 	$(PY) -m pip install --quiet -e .

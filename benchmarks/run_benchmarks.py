@@ -3,7 +3,7 @@
 
 Measures, on simulated data (fixed seed; sites x participants per site):
 
-1. **Ingestion** — :func:`pipeline.ingest.ingest_file` on one assignment file of
+1. **Ingestion** — :func:`takeup.pipeline.ingest.batch.ingest_file` on one assignment file of
    ``--ingest-rows`` rows, as Parquet and as CSV, each into a fresh warehouse, in a
    child process (so its peak RSS is the ingestion's own): rows/s and peak RSS.
 2. **Estimation** on one participant table (columns site_id, outcome, z, d,
@@ -80,7 +80,7 @@ def site_names(k: int) -> list[str]:
 
 
 def study_config(sites: list[str]):
-    from schemas.config import FollowUp, OutcomeSpec, SiteSpec, StudyConfig
+    from takeup.schemas.config import FollowUp, OutcomeSpec, SiteSpec, StudyConfig
     return StudyConfig(study_id="benchmark", outcomes=(OutcomeSpec(name=OUTCOME, primary=True),),
                        follow_up=FollowUp(min_days=FOLLOW_MIN, max_days=FOLLOW_MAX),
                        sites=tuple(SiteSpec(site_id=s) for s in sites))
@@ -266,9 +266,9 @@ class _TimedConnection:
 
 def child_ingest(warehouse: str, file: str) -> None:
     """Child process: ingest one file into an existing warehouse, print JSON."""
-    from pipeline.ingest import ingest_file
-    from pipeline.pseudonym import load_key
-    from pipeline.warehouse import check_key, connect, stored_config
+    from takeup.pipeline.ingest.batch import ingest_file
+    from takeup.pipeline.pseudonym import load_key
+    from takeup.pipeline.warehouse import check_key, connect, stored_config
     wh = Path(warehouse)
     con = connect(wh)
     key = load_key(wh)
@@ -289,7 +289,7 @@ def child_ingest(warehouse: str, file: str) -> None:
 
 
 def bench_ingest(path: Path, workdir: Path, config, label: str) -> dict:
-    from pipeline.warehouse import init_warehouse
+    from takeup.pipeline.warehouse import init_warehouse
     wh = workdir / f"ingest_{label}.duckdb"
     init_warehouse(wh, config)
     code, wall, peak, out, err = run_child([sys.executable, str(Path(__file__).resolve()),
@@ -329,10 +329,10 @@ def sample_table(con, data: dict, names: list[str]) -> None:
 
 def estimation_step(con, config) -> tuple[dict, dict]:
     """(a): the pipeline's moment path; returns results and per-stage seconds."""
-    from pipeline.estimators.complier_means import complier_outcome_means
-    from pipeline.estimators.wald import wald_estimates
-    from pipeline.estimators.weak_iv import anderson_rubin_set, tf_interval
-    from pipeline.sample_sql import moments_for_outcome, site_outcome_moments
+    from takeup.pipeline.stats.estimators.complier_means import complier_outcome_means
+    from takeup.pipeline.stats.estimators.wald import wald_estimates
+    from takeup.pipeline.stats.estimators.weak_iv import anderson_rubin_set, tf_interval
+    from takeup.pipeline.run.sample_sql import moments_for_outcome, site_outcome_moments
     level = config.estimation.level
     t0 = time.perf_counter()
     frame = site_outcome_moments(con)
@@ -432,7 +432,7 @@ def max_rel_diff(a: np.ndarray, b: np.ndarray) -> float:
 # ----------------------------------------------------------------------------- 3. whole run
 def takeup_cmd() -> list[str]:
     script = Path(sys.executable).parent / "takeup"
-    return [str(script)] if script.exists() else [sys.executable, "-m", "pipeline.cli"]
+    return [str(script)] if script.exists() else [sys.executable, "-m", "takeup.pipeline.cli"]
 
 
 def run_timings(warehouse: Path) -> tuple[dict, "object"]:
@@ -457,7 +457,7 @@ def run_timings(warehouse: Path) -> tuple[dict, "object"]:
 def bench_full_run(data: dict, names: list[str], config, scratch: Path, args, est_a: dict) -> dict:
     """(d): Parquet files -> ``takeup ingest`` (per kind) -> ``takeup run``, each a timed subprocess."""
     import pyarrow.parquet as pq
-    from pipeline.warehouse import init_warehouse
+    from takeup.pipeline.warehouse import init_warehouse
     t = time.perf_counter()
     files = write_participant_files(data, names, scratch / "files", args.rows_per_file)
     write_secs = time.perf_counter() - t
@@ -654,7 +654,7 @@ def main(argv=None) -> int:
                 best = secs
         r["a"] = best
         log(f"(a) {best}")
-        from pipeline.site_estimation import estimate_sites
+        from takeup.pipeline.run.site_rows import estimate_sites
         t = time.perf_counter()
         out2, _ = estimation_step(con, config)
         rows = estimate_sites(out2["table"], config, "bench")

@@ -14,12 +14,12 @@ import os
 from dataclasses import asdict
 from pathlib import Path
 
-import flows  # noqa: F401  (Prefect defaults)
+import takeup.flows  # noqa: F401  (Prefect defaults)
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 
-from pipeline.ingest_many import expand_paths, ingest_paths
-from pipeline.prevalidate import prevalidate_file
+from takeup.pipeline.ingest.many_files import expand_paths, ingest_paths
+from takeup.pipeline.ingest.dry_run import prevalidate_file
 
 __all__ = ["ingest_flow"]
 
@@ -37,7 +37,7 @@ def load_task(warehouse: str, paths: list[str], kind: str | None) -> list[dict]:
 @flow(name="takeup-ingest")
 def ingest_flow(paths: list[str], warehouse: str, kind: str | None = None) -> dict:
     """Validate ``paths`` in parallel, then load them in order through one writer."""
-    from pipeline.warehouse import connect, stored_config
+    from takeup.pipeline.warehouse import connect, stored_config
     con = connect(warehouse, read_only=False)
     try:
         cfg = stored_config(con)

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from pipeline.errors import RunnerError  # noqa: F401  (re-exported)
+from takeup.pipeline.errors import RunnerError  # noqa: F401  (re-exported)
 
-from schemas.config import StudyConfig
+from takeup.schemas.config import StudyConfig
 
 __all__ = ["make_task_runner", "RunnerError"]
 

@@ -11,12 +11,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import flows  # noqa: F401  (Prefect defaults)
+import takeup.flows  # noqa: F401  (Prefect defaults)
 from prefect.schedules import Cron
 
-from flows.ingest import ingest_flow
-from flows.monitor import monitor_flow
-from schemas.config import StudyConfig
+from takeup.flows.ingest import ingest_flow
+from takeup.flows.monitor import monitor_flow
+from takeup.schemas.config import StudyConfig
 
 __all__ = ["build_deployments", "serve_deployments"]
 

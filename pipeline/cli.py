@@ -150,14 +150,14 @@ def _setup_logging(level: str) -> None:
 
 
 def _warehouse(args) -> Path:
-    from pipeline.warehouse import default_warehouse_path
+    from takeup.pipeline.warehouse import default_warehouse_path
     return args.warehouse if args.warehouse is not None else default_warehouse_path()
 
 
 # ----------------------------------------------------------------------------- commands
 def cmd_init(args) -> int:
-    from pipeline.warehouse import init_warehouse
-    from schemas.config import load_config
+    from takeup.pipeline.warehouse import init_warehouse
+    from takeup.schemas.config import load_config
     config = load_config(args.config) if args.config else None
     path, key_path = init_warehouse(_warehouse(args), config)
     print(f"warehouse ready: {path}")
@@ -205,7 +205,7 @@ def _print_reports(reports, quiet: bool) -> int:
 
 
 def _ingest_paths(warehouse: Path, files, kind, quiet: bool):
-    from pipeline.ingest_many import ingest_paths
+    from takeup.pipeline.ingest.many_files import ingest_paths
     return ingest_paths(warehouse, files, kind=kind, progress=not quiet and sys.stdout.isatty())
 
 
@@ -215,9 +215,9 @@ def cmd_ingest(args) -> int:
 
 
 def cmd_demo(args) -> int:
-    from pipeline.demo import DEMO_SEED, generate_demo
-    from pipeline.warehouse import init_warehouse
-    from schemas.config import load_config
+    from takeup.pipeline.demo import DEMO_SEED, generate_demo
+    from takeup.pipeline.warehouse import init_warehouse
+    from takeup.schemas.config import load_config
     out: Path = args.out
     warehouse = args.warehouse if args.warehouse is not None else out / "demo.duckdb"
     print(f"generating the demo scenario under {out} ...")
@@ -236,8 +236,8 @@ def cmd_demo(args) -> int:
                        dask_address=None, quiet=args.quiet)
         _print_summary(summary)
         report = out / "report.html"
-        from pipeline.report import render_report
-        from pipeline.warehouse import connect
+        from takeup.pipeline.outputs.report import render_report
+        from takeup.pipeline.warehouse import connect
         con = connect(warehouse, read_only=False)
         try:
             render_report(con, report, summary.run_id)
@@ -260,14 +260,14 @@ def _run(warehouse: Path, as_of, config_path, orchestrated: bool, runner, dask_a
 
 
 def _run_now(warehouse: Path, as_of, config_path, orchestrated: bool, runner, dask_address):
-    from schemas.config import load_config
+    from takeup.schemas.config import load_config
     config = load_config(config_path) if config_path else None
     if orchestrated:
-        from flows.monitor import run_orchestrated
+        from takeup.flows.monitor import run_orchestrated
         return run_orchestrated(warehouse, as_of=as_of, config=config, runner=runner, dask_address=dask_address)
     if runner is not None or dask_address is not None:
         raise UsageError("--runner and --dask-address apply to --orchestrated runs only")
-    from pipeline.run import run_monitoring
+    from takeup.pipeline.run.stages import run_monitoring
     return run_monitoring(warehouse, as_of=as_of, config=config)
 
 
@@ -330,7 +330,7 @@ def _latest_run(con, run: str | None) -> str:
 
 
 def cmd_reproduce(args) -> int:
-    from pipeline.reproduce import reproduce_run
+    from takeup.pipeline.run.reproduce import reproduce_run
     r = reproduce_run(_warehouse(args), args.run)
     for table, diff in r.max_abs_diff.items():
         extra = f" ({r.mismatched[table]})" if table in r.mismatched else ""
@@ -340,7 +340,7 @@ def cmd_reproduce(args) -> int:
 
 
 def cmd_runs(args) -> int:
-    from pipeline.warehouse import connect
+    from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
         df = con.execute("SELECT run_id, status, mode, as_of, started_at, finished_at, n_sites, n_batches, "
@@ -355,7 +355,7 @@ def cmd_runs(args) -> int:
 
 
 def cmd_alerts(args) -> int:
-    from pipeline.warehouse import connect
+    from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
         run = _latest_run(con, args.run)
@@ -376,8 +376,8 @@ def cmd_alerts(args) -> int:
 
 
 def cmd_export(args) -> int:
-    from pipeline.export import export_tables
-    from pipeline.warehouse import connect
+    from takeup.pipeline.outputs.export import export_tables
+    from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
         paths = export_tables(con, args.out, fmt=args.format, run_id=args.run)
@@ -389,8 +389,8 @@ def cmd_export(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from pipeline.report import render_report
-    from pipeline.warehouse import connect
+    from takeup.pipeline.outputs.report import render_report
+    from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
         path = render_report(con, args.out, args.run)
@@ -401,9 +401,9 @@ def cmd_report(args) -> int:
 
 
 def cmd_serve(args) -> int:
-    from schemas.config import load_config
+    from takeup.schemas.config import load_config
     config = load_config(args.config)
-    from flows.serve import serve_deployments
+    from takeup.flows.serve import serve_deployments
     serve_deployments(_warehouse(args), config, args.config, incoming=args.incoming, once=args.once)
     return EXIT_OK
 
@@ -413,9 +413,9 @@ COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd
 
 
 def main(argv: list[str] | None = None) -> int:
-    from pipeline.errors import (ExportError, IngestError, ReportError, ReproduceError, RunnerError,
+    from takeup.pipeline.errors import (ExportError, IngestError, ReportError, ReproduceError, RunnerError,
                                  WarehouseError)
-    from schemas.config import ConfigError
+    from takeup.schemas.config import ConfigError
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.log_level)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from pipeline.errors import WarehouseError  # noqa: F401  (re-exported)
+from takeup.pipeline.errors import WarehouseError  # noqa: F401  (re-exported)
 
 import os
 from contextlib import contextmanager
@@ -12,10 +12,10 @@ from typing import Iterator
 
 import duckdb
 
-from pipeline.pseudonym import PseudonymKey, create_key_file, load_key
-from schemas.config import StudyConfig, parse_config
-from schemas.ddl import create_table_sql
-from schemas.records import STORAGE_TABLES
+from takeup.pipeline.pseudonym import PseudonymKey, create_key_file, load_key
+from takeup.schemas.config import StudyConfig, parse_config
+from takeup.schemas.ddl import create_table_sql
+from takeup.schemas.records import STORAGE_TABLES
 
 __all__ = [
     "WarehouseError", "SCHEMA_VERSION", "default_warehouse_path", "init_warehouse", "connect",
@@ -33,14 +33,14 @@ def default_warehouse_path() -> Path:
 
 def all_table_models() -> dict:
     """Every table the warehouse holds: storage tables, then result tables."""
-    from schemas.results import RESULT_TABLES
+    from takeup.schemas.results import RESULT_TABLES
     return {**STORAGE_TABLES, **RESULT_TABLES}
 
 
 def _create_tables(con: duckdb.DuckDBPyConnection) -> None:
     for table, model in all_table_models().items():
         con.execute(create_table_sql(table, model))
-    from schemas.results import create_views_sql
+    from takeup.schemas.results import create_views_sql
     for sql in create_views_sql():
         con.execute(sql)
 

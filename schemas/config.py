@@ -19,7 +19,7 @@ from typing import Any, Literal, Optional
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from schemas.records import ARMS
+from takeup.schemas.records import ARMS
 
 __all__ = [
     "ConfigError", "StudyConfig", "OutcomeSpec", "SiteSpec", "FollowUp", "AlertThresholds",
@@ -155,7 +155,7 @@ class StudyConfig(_Cfg):
     @field_validator("covariates")
     @classmethod
     def _covariate_names(cls, v: tuple[str, ...]) -> tuple[str, ...]:
-        from schemas.records import AssignmentInput
+        from takeup.schemas.records import AssignmentInput
         reserved = set(AssignmentInput.model_fields)
         for name in v:
             if not name.isidentifier():

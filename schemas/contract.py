@@ -1,6 +1,6 @@
 """Print the warehouse contract (every table: column, type, meaning) as Markdown.
 
-``python -m schemas.contract`` writes the tables section of the README, so
+``python -m takeup.schemas.contract`` writes the tables section of the README, so
 the documentation is generated from the same models as the DDL.
 """
 
@@ -8,9 +8,9 @@ from __future__ import annotations
 
 import sys
 
-from schemas.ddl import columns_of
-from schemas.records import STORAGE_TABLES
-from schemas.results import LATEST_VIEWS, RESULT_TABLES
+from takeup.schemas.ddl import columns_of
+from takeup.schemas.records import STORAGE_TABLES
+from takeup.schemas.results import LATEST_VIEWS, RESULT_TABLES
 
 
 def _table_md(name: str, model) -> str:

@@ -1,8 +1,8 @@
 """Record contracts: what sites send, and what the warehouse stores.
 
 These pydantic models are the single source of truth for the record
-fields.  The warehouse DDL (:mod:`schemas.ddl`) and the vectorised row
-checks run at ingestion (:mod:`pipeline.row_checks`) are both generated
+fields.  The warehouse DDL (:mod:`takeup.schemas.ddl`) and the vectorised row
+checks run at ingestion (:mod:`takeup.pipeline.ingest.row_checks`) are both generated
 from the annotations and the ``json_schema_extra`` markers below, so a
 field is declared exactly once.
 

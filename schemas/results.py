@@ -4,7 +4,7 @@ Every result table is append-only and carries ``run_id``; the
 ``latest_*`` views show the most recent finished run.  Column names here
 are the contract dashboards read, so renaming one is a breaking change.
 The README's result-table section is generated from these descriptions
-(``python -m schemas.contract``).
+(``python -m takeup.schemas.contract``).
 """
 
 from __future__ import annotations

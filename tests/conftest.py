@@ -23,7 +23,7 @@ def key_env(monkeypatch):
 @pytest.fixture
 def warehouse(tmp_path, key_env):
     """A new empty warehouse with the default study config."""
-    from pipeline.warehouse import init_warehouse
+    from takeup.pipeline.warehouse import init_warehouse
     path = tmp_path / "w.duckdb"
     init_warehouse(path)
     return path
@@ -37,10 +37,10 @@ def write_csv(path: Path, header: str, *rows: str) -> Path:
 @pytest.fixture(scope="session")
 def demo_warehouse(tmp_path_factory):
     """The demo scenario generated and ingested once (read-only use by tests)."""
-    from pipeline.demo import generate_demo
-    from pipeline.ingest_many import ingest_paths
-    from pipeline.warehouse import init_warehouse
-    from schemas.config import load_config
+    from takeup.pipeline.demo import generate_demo
+    from takeup.pipeline.ingest.many_files import ingest_paths
+    from takeup.pipeline.warehouse import init_warehouse
+    from takeup.schemas.config import load_config
     root = tmp_path_factory.mktemp("demo")
     old = os.environ.get("TAKEUP_ID_KEY")
     os.environ["TAKEUP_ID_KEY"] = TEST_KEY

@@ -1,4 +1,4 @@
-"""Tests of pipeline.alerts (alert rules and their new/ongoing/resolved lifecycle).
+"""Tests of takeup.pipeline.run.alert_rules (alert rules and their new/ongoing/resolved lifecycle).
 
 External references, named beside each check: scipy.stats.chisquare (Pearson
 goodness of fit, sample-ratio mismatch), statsmodels proportions_ztest
@@ -22,11 +22,11 @@ from scipy import stats
 from statsmodels.stats.multitest import multipletests
 from statsmodels.stats.proportion import proportions_ztest
 
-from pipeline.alerts import SEVERITY, alert_key, apply_lifecycle, compute_alerts
-from pipeline.run_inputs import RunContext, RunInputs
-from pipeline.trends import detect_drift
-from schemas.config import StudyConfig
-from schemas.results import AlertRow
+from takeup.pipeline.run.alert_rules import SEVERITY, alert_key, apply_lifecycle, compute_alerts
+from takeup.pipeline.run.inputs import RunContext, RunInputs
+from takeup.pipeline.run.trend_rows import detect_drift
+from takeup.schemas.config import StudyConfig
+from takeup.schemas.results import AlertRow
 
 START = date(2026, 1, 5)
 AS_OF = date(2026, 4, 30)

@@ -7,7 +7,7 @@ import sys
 
 import pytest
 
-from pipeline.cli import COMMANDS, main
+from takeup.pipeline.cli import COMMANDS, main
 from tests.conftest import write_csv
 
 
@@ -49,5 +49,5 @@ def test_ingest_exit_codes(tmp_path, capsys, key_env):
 
 
 def test_console_script_runs():
-    r = subprocess.run([sys.executable, "-m", "pipeline.cli", "--help"], capture_output=True, text=True, timeout=60)
+    r = subprocess.run([sys.executable, "-m", "takeup.pipeline.cli", "--help"], capture_output=True, text=True, timeout=60)
     assert r.returncode == 0 and "takeup" in r.stdout

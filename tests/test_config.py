@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from pipeline.cli import main
-from schemas.config import ConfigError, StudyConfig, load_config, parse_config
+from takeup.pipeline.cli import main
+from takeup.schemas.config import ConfigError, StudyConfig, load_config, parse_config
 
 
 def test_defaults():

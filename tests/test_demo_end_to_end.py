@@ -14,9 +14,9 @@ import duckdb
 import numpy as np
 import pytest
 
-from pipeline.demo import CENTRES, PLANTED, demo_as_of, generate_late_files
-from pipeline.ingest_many import ingest_paths
-from pipeline.run import run_monitoring
+from takeup.pipeline.demo import CENTRES, PLANTED, demo_as_of, generate_late_files
+from takeup.pipeline.ingest.many_files import ingest_paths
+from takeup.pipeline.run.stages import run_monitoring
 from tests.conftest import TEST_KEY
 
 # Consequences of planted problems that are real findings, not false alarms: contamination at
@@ -143,7 +143,7 @@ def test_clean_data_resolves_alerts(demo_runs):
 def test_runs_are_reproducible_from_their_run_id(demo_runs):
     """Run 1 recomputed after later batches arrived: same tables (to 1e-9; DuckDB's parallel sums
     may change the last bits of a double)."""
-    from pipeline.reproduce import reproduce_run
+    from takeup.pipeline.run.reproduce import reproduce_run
     r = reproduce_run(demo_runs["path"], demo_runs["runs"][0].run_id)
     assert r.identical, (r.max_abs_diff, r.mismatched)
     assert max(r.max_abs_diff.values()) < 1e-9

@@ -2,12 +2,12 @@
 
 from pathlib import Path
 
-from schemas.contract import contract_markdown
+from takeup.schemas.contract import contract_markdown
 
 
 def test_readme_contract_matches_models():
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
-    assert contract_markdown().strip() in readme, "run `python -m schemas.contract` and update the README"
+    assert contract_markdown().strip() in readme, "run `python -m takeup.schemas.contract` and update the README"
 
 
 def test_readme_has_no_placeholders():
@@ -18,7 +18,7 @@ def test_readme_has_no_placeholders():
 def test_readme_config_example_is_valid():
     import tomllib
 
-    from schemas.config import parse_config
+    from takeup.schemas.config import parse_config
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
     block = readme.split("```toml\n", 1)[1].split("```", 1)[0]
     cfg = parse_config(tomllib.loads(block), "README example")

@@ -12,9 +12,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline.monitoring.cusum import (arl_bernoulli, arl_bernoulli_simulated, bernoulli_cusum, design_cusum,
-                                       shifted_rate)
-from schemas.config import AlertThresholds
+from takeup.pipeline.stats.drift.chart import bernoulli_cusum, shifted_rate
+from takeup.pipeline.stats.drift.design import design_cusum
+from takeup.pipeline.stats.drift.run_length import arl_bernoulli, arl_bernoulli_simulated
+from takeup.schemas.config import AlertThresholds
 
 A = AlertThresholds()
 # (p0, odds ratio, documented h, ARL0 per participant, ARL1 per participant) -- computed by the chain, README

@@ -18,7 +18,7 @@ import pytest
 import statsmodels.api as sm
 from linearmodels.datasets import card
 
-from pipeline.estimators.adjusted import fit_covariate_adjusted
+from takeup.pipeline.stats.estimators.adjusted import fit_covariate_adjusted
 
 COVARIATES = ["exper", "expersq", "black", "smsa", "south", "smsa66"] + [f"reg66{i}" for i in range(2, 10)]
 

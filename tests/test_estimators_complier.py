@@ -16,13 +16,13 @@ import warnings
 import numpy as np
 import pytest
 
-from pipeline.estimators.complier_means import (
+from takeup.pipeline.stats.estimators.complier_means import (
     complier_cells_from_arrays,
     complier_outcome_means,
     kappa_complier_means,
 )
-from pipeline.estimators.moments import ArmMoments, SiteMoments, arm_moments_from_arrays
-from pipeline.estimators.wald import wald_estimates
+from takeup.pipeline.stats.estimators.moments import ArmMoments, SiteMoments, arm_moments_from_arrays
+from takeup.pipeline.stats.estimators.wald import wald_estimates
 
 # Population means by type: complier / always-taker / never-taker.
 MU_X = np.array([[0.0, 5.0], [2.0, 1.0], [-1.0, 3.0]])     # two covariates

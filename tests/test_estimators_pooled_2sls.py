@@ -16,8 +16,8 @@ import pytest
 from linearmodels.iv import IV2SLS, IVGMM
 from scipy import stats
 
-from pipeline.estimators.moments import arm_moments_from_arrays
-from pipeline.estimators.pooled_2sls import pooled_2sls
+from takeup.pipeline.stats.estimators.moments import arm_moments_from_arrays
+from takeup.pipeline.stats.estimators.pooled_2sls import pooled_2sls
 
 
 def simulate(seed, n_sites, cace=None, size=(60, 250)):
@@ -190,8 +190,15 @@ def test_perfect_fit_gives_zero_se_and_undefined_j():
     assert res.estimate == pytest.approx(2.0, rel=1e-9)
     assert res.se == pytest.approx(0.0, abs=1e-7)   # cancellation in raw sums only
     assert np.isnan(res.j_stat) and "singular" in res.note
-    with pytest.raises(ValueError):
-        IVGMM(*stacked(site, z, d, y), weight_type="robust").fit()
+    # linearmodels before 7 refused the two-step GMM here (ValueError); 7.1 goes on with a
+    # numerically singular moment covariance and prints a J of 178 for this draw, which is
+    # not a statistic. Either way its point estimate agrees; the J is what we decline to give.
+    try:
+        ref = IVGMM(*stacked(site, z, d, y), weight_type="robust").fit()
+    except ValueError:
+        pass
+    else:
+        assert float(ref.params["d"]) == pytest.approx(2.0, rel=1e-9)
 
 
 def test_result_is_read_only():

@@ -18,8 +18,8 @@ import statsmodels.api as sm
 from linearmodels.iv import IV2SLS
 from scipy import stats
 
-from pipeline.estimators.moments import ArmMoments, ClusterMoments, SiteMoments, arm_moments_from_arrays
-from pipeline.estimators.wald import wald_estimates
+from takeup.pipeline.stats.estimators.moments import ArmMoments, ClusterMoments, SiteMoments, arm_moments_from_arrays
+from takeup.pipeline.stats.estimators.wald import wald_estimates
 
 SIZES = [60, 150, 400, 800, 90, 250, 500, 120]
 NEG_SITE = 7  # uptake generated with the arm labels swapped

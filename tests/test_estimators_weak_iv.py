@@ -15,9 +15,9 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from pipeline.estimators.moments import ClusterMoments, arm_moments_from_arrays
-from pipeline.estimators.wald import wald_estimates
-from pipeline.estimators.weak_iv import (
+from takeup.pipeline.stats.estimators.moments import ClusterMoments, arm_moments_from_arrays
+from takeup.pipeline.stats.estimators.wald import wald_estimates
+from takeup.pipeline.stats.estimators.weak_iv import (
     anderson_rubin_set,
     anderson_rubin_statistic,
     tf_critical_value,

@@ -1,4 +1,4 @@
-"""Tests of pipeline.export (result tables of one run -> Parquet / CSV files).
+"""Tests of takeup.pipeline.outputs.export (result tables of one run -> Parquet / CSV files).
 
 External references used here:
 * pyarrow's Parquet reader (``pandas.read_parquet``) and pandas' CSV reader
@@ -24,10 +24,10 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-import pipeline.export as export_mod
-from pipeline.export import ExportError, export_tables
-from schemas.ddl import columns_of
-from schemas.results import RESULT_TABLES
+import takeup.pipeline.outputs.export as export_mod
+from takeup.pipeline.outputs.export import ExportError, export_tables
+from takeup.schemas.ddl import columns_of
+from takeup.schemas.results import RESULT_TABLES
 from tests.test_report import RUN, RUN_FAILED, RUN_OLD, build_warehouse
 
 #: OWASP "CSV Injection": characters that start a formula in a spreadsheet cell
@@ -63,7 +63,7 @@ def _raw(path) -> str:
 
 
 def _neutralised(v):
-    """The OWASP rule, written independently of the SQL in pipeline.export."""
+    """The OWASP rule, written independently of the SQL in takeup.pipeline.outputs.export."""
     if isinstance(v, str) and v[:1] in OWASP_PREFIXES:
         return "'" + v
     return v

@@ -57,9 +57,9 @@ def _site_files(root, seed=7, n_sites=6, n=160):
 
 @pytest.fixture
 def small_warehouse(tmp_path, monkeypatch):
-    from pipeline.ingest_many import ingest_paths
-    from pipeline.warehouse import init_warehouse
-    from schemas.config import parse_config
+    from takeup.pipeline.ingest.many_files import ingest_paths
+    from takeup.pipeline.warehouse import init_warehouse
+    from takeup.schemas.config import parse_config
     monkeypatch.setenv("TAKEUP_ID_KEY", TEST_KEY)
     cfg = parse_config({
         "study_id": "flowtest", "covariates": ["age"], "outcomes": [{"name": "score", "primary": True}],
@@ -95,8 +95,8 @@ def _assert_same(a, b):
 
 
 def test_orchestrated_run_equals_in_process(prefect_api, small_warehouse):
-    from flows.monitor import run_orchestrated
-    from pipeline.run import run_monitoring
+    from takeup.flows.monitor import run_orchestrated
+    from takeup.pipeline.run.stages import run_monitoring
     plain = run_monitoring(small_warehouse, as_of=AS_OF)
     orch = run_orchestrated(small_warehouse, as_of=AS_OF)
     assert plain.mode == "in_process" and orch.mode == "orchestrated"
@@ -111,8 +111,9 @@ def test_orchestrated_run_equals_in_process(prefect_api, small_warehouse):
 
 
 def test_failing_site_task_marks_site_and_run_partial(prefect_api, small_warehouse, monkeypatch):
-    from flows.monitor import run_orchestrated
-    from pipeline import run as core
+    from takeup.flows.monitor import run_orchestrated
+    from takeup.pipeline.run import stages as core
+    from dataclasses import replace
     real = core.compute_adjusted_row
 
     def flaky(frame, base_row, ctx):
@@ -120,7 +121,8 @@ def test_failing_site_task_marks_site_and_run_partial(prefect_api, small_warehou
             raise RuntimeError("injected site failure")
         return real(frame, base_row, ctx)
 
-    monkeypatch.setattr(core, "compute_adjusted_row", flaky)
+    monkeypatch.setattr(core, "STAGES", tuple(replace(s, function=flaky) if s.name == "adjusted" else s
+                                              for s in core.STAGES))
     s = run_orchestrated(small_warehouse, as_of=AS_OF)
     assert s.status == "partial" and "injected site failure" in s.message
     con = duckdb.connect(str(small_warehouse), read_only=True)
@@ -134,7 +136,7 @@ def test_failing_site_task_marks_site_and_run_partial(prefect_api, small_warehou
 
 def test_dask_local_cluster_equals_local_runner(prefect_api, small_warehouse):
     distributed = pytest.importorskip("distributed")
-    from flows.monitor import run_orchestrated
+    from takeup.flows.monitor import run_orchestrated
     local = run_orchestrated(small_warehouse, as_of=AS_OF, runner="local")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                   dashboard_address=None) as cluster:
@@ -144,9 +146,9 @@ def test_dask_local_cluster_equals_local_runner(prefect_api, small_warehouse):
 
 
 def test_ingest_flow_validates_in_parallel_and_loads(prefect_api, tmp_path, monkeypatch):
-    from flows.ingest import ingest_flow
-    from pipeline.warehouse import init_warehouse
-    from schemas.config import parse_config
+    from takeup.flows.ingest import ingest_flow
+    from takeup.pipeline.warehouse import init_warehouse
+    from takeup.schemas.config import parse_config
     monkeypatch.setenv("TAKEUP_ID_KEY", TEST_KEY)
     path = tmp_path / "w.duckdb"
     init_warehouse(path, parse_config({"covariates": ["age"]}))
@@ -163,8 +165,8 @@ def test_ingest_flow_validates_in_parallel_and_loads(prefect_api, tmp_path, monk
 
 def test_serve_once_registers_scheduled_deployment(prefect_api, small_warehouse, tmp_path):
     from prefect.client.orchestration import get_client
-    from flows.serve import serve_deployments
-    from schemas.config import parse_config
+    from takeup.flows.serve import serve_deployments
+    from takeup.schemas.config import parse_config
     cfg = parse_config({"study_id": "flowtest", "schedule": {"cron": "15 7 * * 2", "timezone": "UTC"}})
     ids = serve_deployments(small_warehouse, cfg, tmp_path / "study.toml", incoming=tmp_path, once=True)
     assert len(ids) == 2

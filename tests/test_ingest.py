@@ -10,12 +10,12 @@ import duckdb
 import pandas as pd
 import pytest
 
-from pipeline import ingest as ingest_mod
-from pipeline.ingest import ingest_file
-from pipeline.ingest_many import ingest_paths
-from pipeline.pseudonym import load_key
-from pipeline.warehouse import connect, init_warehouse
-from schemas.config import StudyConfig, parse_config
+from takeup.pipeline.ingest import batch as ingest_mod
+from takeup.pipeline.ingest.batch import ingest_file
+from takeup.pipeline.ingest.many_files import ingest_paths
+from takeup.pipeline.pseudonym import load_key
+from takeup.pipeline.warehouse import connect, init_warehouse
+from takeup.schemas.config import StudyConfig, parse_config
 from tests.conftest import TEST_KEY, write_csv
 
 A_HEADER = "site_id,participant_id,arm,assigned_on"
@@ -267,7 +267,7 @@ def test_source_rows_after_malformed_lines(warehouse, tmp_path):
 
 
 def test_wrong_key_is_refused(tmp_path, monkeypatch):
-    from pipeline.warehouse import WarehouseError
+    from takeup.pipeline.warehouse import WarehouseError
     monkeypatch.setenv("TAKEUP_ID_KEY", "key-one")
     path = tmp_path / "w.duckdb"
     init_warehouse(path)

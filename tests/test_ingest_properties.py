@@ -6,11 +6,11 @@ import duckdb
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline.ingest import ingest_file
-from pipeline.pseudonym import PseudonymKey
-from schemas.config import StudyConfig
-from schemas.ddl import create_table_sql
-from schemas.records import STORAGE_TABLES
+from takeup.pipeline.ingest.batch import ingest_file
+from takeup.pipeline.pseudonym import PseudonymKey
+from takeup.schemas.config import StudyConfig
+from takeup.schemas.ddl import create_table_sql
+from takeup.schemas.records import STORAGE_TABLES
 
 HEADERS = {
     "assignment": ["site_id", "participant_id", "arm", "assigned_on"],

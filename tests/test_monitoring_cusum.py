@@ -1,4 +1,4 @@
-"""Tests for pipeline.monitoring.cusum (Bernoulli CUSUM, ARLs, design)."""
+"""Tests for takeup.pipeline.stats.drift (the Bernoulli CUSUM chart, its run lengths, its design, baselines)."""
 
 from __future__ import annotations
 
@@ -7,19 +7,13 @@ import math
 import numpy as np
 import pytest
 
-from pipeline.monitoring.cusum import (
-    DEFAULT_ODDS_RATIO_FALL,
-    DEFAULT_ODDS_RATIO_RISE,
-    DEFAULT_TARGET_ARL0,
-    arl_bernoulli,
-    arl_bernoulli_simulated,
-    baseline_rate,
-    bernoulli_cusum,
-    design_cusum,
-    shifted_rate,
-)
+from takeup.pipeline.stats.drift.baseline import baseline_rate
+from takeup.pipeline.stats.drift.chart import bernoulli_cusum, shifted_rate
+from takeup.pipeline.stats.drift.design import (DEFAULT_ODDS_RATIO_FALL, DEFAULT_ODDS_RATIO_RISE, DEFAULT_TARGET_ARL0,
+                                                design_cusum)
+from takeup.pipeline.stats.drift.run_length import arl_bernoulli, arl_bernoulli_simulated
 
-# Values documented in the module docstring of pipeline.monitoring.cusum for
+# Values documented in the module docstring of takeup.pipeline.stats.drift.design for
 # the default design (p0 = 0.10, odds ratio 2, target ARL0 1000), printed
 # there to 5 decimals (h) and 1 decimal (ARLs).
 DOC_P0 = 0.10

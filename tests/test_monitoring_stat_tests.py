@@ -1,4 +1,4 @@
-"""Tests for pipeline.monitoring.stat_tests against scipy, statsmodels and
+"""Tests for takeup.pipeline.stats.significance against scipy, statsmodels and
 published values."""
 
 from __future__ import annotations
@@ -10,7 +10,7 @@ from scipy import stats
 from statsmodels.stats.multitest import multipletests
 from statsmodels.stats.proportion import proportions_ztest
 
-from pipeline.monitoring.stat_tests import (
+from takeup.pipeline.stats.significance import (
     benjamini_hochberg,
     sample_ratio_test,
     two_proportion_difference_test,

@@ -1,4 +1,4 @@
-"""Tests of pipeline.pooling.influence (leave-one-out, residuals, empirical Bayes).
+"""Tests of takeup.pipeline.stats.meta_analysis.influence (leave-one-out, residuals, empirical Bayes).
 
 External references: statsmodels.stats.meta_analysis.combine_effects for the
 DerSimonian-Laird leave-one-out fits; a Monte Carlo simulation with known
@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 from statsmodels.stats.meta_analysis import combine_effects
 
-from pipeline.pooling.influence import empirical_bayes, site_influence
-from pipeline.pooling.meta import METHODS, combine
+from takeup.pipeline.stats.meta_analysis.influence import empirical_bayes, site_influence
+from takeup.pipeline.stats.meta_analysis.meta import METHODS, combine
 
 
 def random_sites(seed: int, k_min: int = 3, k_max: int = 25):

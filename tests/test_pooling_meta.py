@@ -1,4 +1,4 @@
-"""Tests of pipeline.pooling.meta (combine) and pipeline.pooling.subgroups.
+"""Tests of takeup.pipeline.stats.meta_analysis.meta (combine) and takeup.pipeline.stats.meta_analysis.subgroups.
 
 External references used here:
 * statsmodels.stats.meta_analysis.combine_effects (fixed effect, DL, PM,
@@ -27,8 +27,8 @@ from scipy import optimize, stats
 from statsmodels.regression.linear_model import WLS
 from statsmodels.stats.meta_analysis import combine_effects, effectsize_2proportions
 
-from pipeline.pooling.meta import METHODS, MetaResult, combine
-from pipeline.pooling.subgroups import between_group_test
+from takeup.pipeline.stats.meta_analysis.meta import METHODS, MetaResult, combine
+from takeup.pipeline.stats.meta_analysis.subgroups import between_group_test
 
 # ---------------------------------------------------------------------------
 # helpers

@@ -1,4 +1,4 @@
-"""Tests of pipeline.report (the self-contained HTML report).
+"""Tests of takeup.pipeline.outputs.report (the self-contained HTML report).
 
 External references used here:
 * Python's ``html.parser`` (the HTML tokenizer of the standard library) to
@@ -32,10 +32,10 @@ import pytest
 
 from matplotlib.patches import Polygon
 
-from pipeline.report import ReportError, load_report_data, render_report
-from pipeline.report.charts import forest_figure, robust_intervals, uptake_figure
-from pipeline.warehouse import init_warehouse, connect
-from schemas.config import OutcomeSpec, StudyConfig
+from takeup.pipeline.outputs.report import ReportError, load_report_data, render_report
+from takeup.pipeline.outputs.report.charts import forest_figure, robust_intervals, uptake_figure
+from takeup.pipeline.warehouse import init_warehouse, connect
+from takeup.schemas.config import OutcomeSpec, StudyConfig
 
 STUDY_ID = "evening-numeracy-pilot"
 RUN_OLD = "20260720T060000Z-a1b2"

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 from matplotlib import image as mpimg
 
-from pipeline.report import render_report
+from takeup.pipeline.outputs.report import render_report
 from tests.test_report import build_warehouse
 
 TIMEOUT_S = 60    # generous: a cold Chromium start takes a few seconds on 2 cores

@@ -17,10 +17,10 @@ import pandas as pd
 import pytest
 from linearmodels.iv import IV2SLS
 
-from pipeline.ingest_many import ingest_paths
-from pipeline.run import run_monitoring
-from pipeline.warehouse import init_warehouse
-from schemas.config import parse_config
+from takeup.pipeline.ingest.many_files import ingest_paths
+from takeup.pipeline.run.stages import run_monitoring
+from takeup.pipeline.warehouse import init_warehouse
+from takeup.schemas.config import parse_config
 
 
 def _simulate(rng, clustered: bool):

@@ -1,4 +1,4 @@
-"""Tests of pipeline.trends (uptake trend rows and drift charts).
+"""Tests of takeup.pipeline.run.trend_rows (uptake trend rows and drift charts).
 
 External references: the trend shares, cumulative shares and the unpooled
 binomial standard error of a difference of two proportions are recomputed
@@ -17,11 +17,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline.monitoring.cusum import shifted_rate
-from pipeline.run_inputs import RunContext, RunInputs
-from pipeline.trends import compute_trends, detect_drift, round_level
-from schemas.config import StudyConfig
-from schemas.results import UptakeTrendRow
+from takeup.pipeline.stats.drift.chart import shifted_rate
+from takeup.pipeline.run.inputs import RunContext, RunInputs
+from takeup.pipeline.run.trend_rows import compute_trends, detect_drift, round_level
+from takeup.schemas.config import StudyConfig
+from takeup.schemas.results import UptakeTrendRow
 
 START = date(2026, 1, 5)  # a Monday
 

@@ -1,0 +1,13 @@
+"""Self-contained HTML report of a monitoring run.
+
+:func:`render_report` reads the result tables of one run and writes a
+single HTML file with inline CSS and inline SVG charts (no network
+requests).  The module split: :mod:`.data` reads the tables,
+:mod:`.charts` draws the forest plot and the uptake small multiples,
+:mod:`.html` assembles and escapes the page.
+"""
+
+from takeup.pipeline.outputs.report.data import ReportData, ReportError, load_report_data
+from takeup.pipeline.outputs.report.html import render_report, report_html
+
+__all__ = ["render_report", "report_html", "load_report_data", "ReportData", "ReportError"]

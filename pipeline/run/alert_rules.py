@@ -1,0 +1,590 @@
+"""Alert rules of one run and their lifecycle across runs.
+
+:func:`compute_alerts` evaluates every rule on the run's results and returns
+rows of ``alerts`` (the :class:`~takeup.schemas.results.AlertRow` columns).  Rules
+that concern an outcome use the study's primary outcome (``unadjusted``
+rows).  Thresholds come from ``config.alerts``.
+
+Rules
+-----
+==============================  ========  ==================================================
+rule                            severity  raised when
+==============================  ========  ==================================================
+``negative_first_stage``        critical  one-sided test of complier share < 0 (z = share/SE,
+                                          BH-adjusted across sites) at ``fdr_q``; or the
+                                          share is negative with first-stage F at least
+                                          ``negative_first_stage_min_f``
+``sample_ratio_mismatch``       critical  Pearson chi-square of the arm counts (everyone
+                                          assigned) against the site's designed allocation
+                                          has p < ``srm_p_value``
+``weak_first_stage``            warning   first-stage F < ``weak_first_stage_f``
+``first_stage_decline``         warning   first stage of the latest ``first_stage_decline_periods``
+                                          cohorts below that of earlier cohorts (one-sided
+                                          test, BH-adjusted across sites) at ``fdr_q``
+``control_uptake_drift``        warning   upward Bernoulli CUSUM of control uptake signalled
+``treatment_uptake_drift``      warning   downward Bernoulli CUSUM of treated uptake signalled
+``differential_missing_outcomes`` warning missing-outcome shares differ between arms
+                                          (two-sided two-proportion z test, BH-adjusted across
+                                          sites) at ``fdr_q``
+``stale_site``                  warning   latest record more than ``stale_days`` before the
+                                          cutoff, or a registry site with no record at all
+``outlier_site``                info      pooled site's CACE outside the REML prediction
+                                          interval, or its \\|standardised residual\\| above
+                                          ``outlier_std_residual``
+==============================  ========  ==================================================
+
+Severity: ``critical`` when the randomisation or the instrument itself looks
+broken (the CACE of the site is not interpretable); ``warning`` when
+estimates are fragile or the data flow needs attention; ``info`` for a site
+that is simply different (worth a look, not an error).
+
+Multiple testing: Benjamini-Hochberg control of the false discovery rate at
+``fdr_q`` is applied across sites within each test-based rule that runs one
+test per site at the conventional level -- ``negative_first_stage``,
+``first_stage_decline`` and ``differential_missing_outcomes``.  Their
+``p_value`` column holds the BH-adjusted p-value.  The sample-ratio check
+uses no BH: its threshold (default 0.001) is already strict, chosen as in
+practice (common practice) for a check that is run on every site at every
+run.  Other rules compare a statistic with a threshold and have no p-value.
+
+Columns: for threshold rules ``value`` and ``threshold`` are on the same
+scale (F and ``weak_first_stage_f``; CUSUM and its limit ``h``; days since
+the latest record and ``stale_days``; standardised residual and
+``outlier_std_residual``).  For test rules ``value`` is the estimated
+quantity (complier share, decline in first stage, treated share of
+assignments, difference in missing shares) and ``threshold`` the level its
+(adjusted) p-value is compared with.
+
+Lifecycle
+---------
+``alert_key = "{rule}:{site or '-'}:{outcome or '-'}"``.  Against the
+previous finished run's alerts:
+
+* ``new`` -- not active (new/ongoing) in the previous run; first seen now;
+* ``ongoing`` -- active in the previous run; keeps its ``first_seen_run_id``;
+* ``resolved`` -- active in the previous run but not now: one row with the
+  previous run's value, threshold and p-value, ``last_seen_run_id`` = the
+  previous row's, message ``"resolved: ..."``.
+
+Alerts resolved in the previous run and not active now are not repeated; an
+alert that fires again after being resolved is ``new`` with a new first
+run.  The table is append-only: history is never rewritten.
+
+References
+----------
+.. [1] Staiger, D. and Stock, J. H. (1997). Instrumental variables regression
+   with weak instruments. *Econometrica* 65(3), 557-586.
+.. [2] Lee, D. S., McCrary, J., Moreira, M. J. and Porter, J. (2022). Valid
+   t-ratio inference for IV. *American Economic Review* 112(10), 3260-3290.
+.. [3] Benjamini, Y. and Hochberg, Y. (1995). Controlling the false discovery
+   rate: a practical and powerful approach to multiple testing. *Journal of
+   the Royal Statistical Society B* 57(1), 289-300.
+.. [4] Fabijan, A., Gupchup, J., Gupta, S., Omhover, J., Qin, W., Vermeer, L.
+   and Dmitriev, P. (2019). Diagnosing sample ratio mismatch in online
+   controlled experiments. *KDD '19*, 2156-2164.
+.. [5] Reynolds, M. R. Jr. and Stoumbos, Z. G. (1999). A CUSUM chart for
+   monitoring a proportion when inspecting continuously. *Journal of
+   Quality Technology* 31(1), 87-108.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from takeup.pipeline.stats import significance
+from takeup.pipeline.run.pooled_rows import INFLUENCE_METHOD
+from takeup.pipeline.run.inputs import RunContext, RunInputs
+from takeup.pipeline.run.site_rows import clean
+from takeup.pipeline.run.trend_rows import DriftResult
+
+__all__ = ["RULES", "SEVERITY", "BH_RULES", "alert_key", "compute_alerts", "evaluate_rules", "apply_lifecycle",
+           "decline_windows"]
+
+SEVERITY: dict[str, str] = {
+    "negative_first_stage": "critical",
+    "sample_ratio_mismatch": "critical",
+    "weak_first_stage": "warning",
+    "first_stage_decline": "warning",
+    "control_uptake_drift": "warning",
+    "treatment_uptake_drift": "warning",
+    "differential_missing_outcomes": "warning",
+    "stale_site": "warning",
+    "outlier_site": "info",
+}
+RULES: tuple[str, ...] = tuple(SEVERITY)
+#: rules whose p-values are Benjamini-Hochberg adjusted across sites
+BH_RULES: tuple[str, ...] = ("negative_first_stage", "first_stage_decline", "differential_missing_outcomes")
+_SEVERITY_ORDER = {"critical": 0, "warning": 1, "info": 2}
+_ACTIVE = ("new", "ongoing")
+
+
+def alert_key(rule: str, site_id: str | None, outcome: str | None) -> str:
+    """Stable, readable key of (rule, site, outcome)."""
+    return f"{rule}:{site_id or '-'}:{outcome or '-'}"
+
+
+def _pct(x: float) -> str:
+    return f"{100 * x:.0f}%"
+
+
+def _num(x: float | None, digits: int = 2) -> str:
+    return "n/a" if x is None or not math.isfinite(x) else f"{x:.{digits}f}"
+
+
+def _p(x: float) -> str:
+    return f"{x:.2g}" if x >= 1e-4 else f"{x:.1e}"
+
+
+def _alert(rule: str, site: str | None, outcome: str | None, value, threshold, p_value, message: str) -> dict:
+    return {"rule": rule, "site_id": site, "outcome": outcome, "value": clean(value),
+            "threshold": clean(threshold), "p_value": clean(p_value), "message": message}
+
+
+# ----------------------------------------------------------------------------- helpers
+def _bh(p: np.ndarray) -> np.ndarray:
+    """BH-adjusted p-values across sites (NaN entries stay NaN and do not count as tests)."""
+    p = np.asarray(p, dtype=float)
+    if p.size == 0:
+        return p.copy()
+    return _bh_adjusted(p)
+
+
+def _primary(inputs: RunInputs, ctx: RunContext) -> str | None:
+    primary = ctx.config.primary_outcome
+    if primary is None and inputs.outcomes:
+        primary = inputs.outcomes[0]
+    return primary
+
+
+def _primary_rows(site_rows: list[dict], outcome: str | None) -> pd.DataFrame:
+    rows = [r for r in site_rows if r.get("outcome") == outcome and r.get("spec", "unadjusted") == "unadjusted"]
+    cols = ["site_id", "first_stage_f", "complier_share", "complier_share_se", "n_treatment", "n_control",
+            "n_treatment_assigned", "n_control_assigned", "missing_outcome_treatment",
+            "missing_outcome_control", "cace", "cace_se", "included_in_pool", "status"]
+    frame = pd.DataFrame(rows)
+    for c in cols:
+        if c not in frame.columns:
+            frame[c] = pd.Series(dtype=object)
+    return frame[cols].reset_index(drop=True)
+
+
+def _float(col: pd.Series) -> np.ndarray:
+    return pd.to_numeric(col, errors="coerce").to_numpy(dtype=float)
+
+
+def _counts(frame: pd.DataFrame | None) -> pd.DataFrame:
+    cols = ["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"]
+    if frame is None or len(frame) == 0:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in cols})
+    f = frame.loc[:, cols].copy()
+    f["site_id"] = f["site_id"].astype(str)
+    f["z"] = f["z"].astype(int)
+    f["period_start"] = pd.to_datetime(f["period_start"]).dt.date
+    for c in cols[3:]:
+        f[c] = pd.to_numeric(f[c], errors="coerce").fillna(0).astype(float)
+    return f
+
+
+# ----------------------------------------------------------------------------- rules
+def _weak_first_stage(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
+    f = _float(rows["first_stage_f"])
+    hit = np.isfinite(f) & (f < a.weak_first_stage_f)
+    out = []
+    for i in np.flatnonzero(hit):  # one message per raised alert (strings)
+        site = rows.at[i, "site_id"]
+        no_outcomes = rows.at[i, "status"] == "no_outcomes"
+        basis = (" (all assigned participants: no outcome measurements yet)" if no_outcomes else "")
+        out.append(_alert(
+            "weak_first_stage", site, outcome, f[i], a.weak_first_stage_f, None,
+            f"First-stage F is {f[i]:.1f}{basis}, below {a.weak_first_stage_f:g} (Staiger & Stock rule of "
+            f"thumb): the instrument is weak at this site. Below F = {a.tf_valid_f:g} conventional t-ratio "
+            f"intervals are not valid (Lee et al. 2022); use the tF and Anderson-Rubin columns for the CACE."))
+    return out
+
+
+def _negative_first_stage(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
+    share = _float(rows["complier_share"])
+    se = _float(rows["complier_share_se"])
+    f = _float(rows["first_stage_f"])
+    ok = np.isfinite(share) & np.isfinite(se) & (se > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.where(ok, share / np.where(ok, se, 1.0), np.nan)
+    p_raw = np.where(ok, stats.norm.cdf(z), np.nan)          # H1: complier share < 0
+    p_adj = _bh(p_raw)
+    by_test = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
+    by_f = np.isfinite(share) & (share < 0) & np.isfinite(f) & (f >= a.negative_first_stage_min_f)
+    out = []
+    for i in np.flatnonzero(by_test | by_f):
+        site = rows.at[i, "site_id"]
+        why = (f"one-sided test of a negative first stage: BH-adjusted p = {_p(p_adj[i])} at "
+               f"q = {a.fdr_q:g}" if by_test[i] else
+               f"first-stage F {f[i]:.1f} is at least {a.negative_first_stage_min_f:g}")
+        out.append(_alert(
+            "negative_first_stage", site, outcome, share[i], a.fdr_q, p_adj[i],
+            f"Uptake is lower among those offered the programme than among controls: complier share "
+            f"{share[i]:.3f} (SE {_num(se[i], 3)}; {why}). The CACE of this site is not interpretable; "
+            f"check how assignments were recorded and delivered."))
+    return out
+
+
+def decline_windows(cohort: pd.DataFrame, n_recent: int) -> pd.DataFrame:
+    """Per site: uptake counts by arm in the latest ``n_recent`` cohorts and before them.
+
+    The windows use the cohort periods in which the site has uptake reports
+    (either arm); participants are those with an uptake report.
+
+    Returns
+    -------
+    DataFrame
+        site_id, x_t_recent, n_t_recent, x_c_recent, n_c_recent, x_t_early, n_t_early,
+        x_c_early, n_c_early, recent_from (first period of the recent window),
+        n_periods (periods with reports).
+    """
+    f = _counts(cohort)
+    f = f[f["n_observed"] > 0]
+    cols = ["site_id", "x_t_recent", "n_t_recent", "x_c_recent", "n_c_recent", "x_t_early", "n_t_early",
+            "x_c_early", "n_c_early", "recent_from", "n_periods"]
+    if f.empty:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in cols})
+    per = f[["site_id", "period_start"]].drop_duplicates().sort_values(["site_id", "period_start"])
+    per["from_end"] = per.groupby("site_id").cumcount(ascending=False)
+    per["n_periods"] = per.groupby("site_id")["period_start"].transform("size")
+    f = f.merge(per, on=["site_id", "period_start"])
+    f["recent"] = f["from_end"] < n_recent
+    agg = f.groupby(["site_id", "recent", "z"])[["n_taken_up", "n_observed"]].sum().unstack(["recent", "z"],
+                                                                                             fill_value=0.0)
+    out = pd.DataFrame({"site_id": agg.index})
+    for name, recent in (("recent", True), ("early", False)):
+        for arm, z in (("t", 1), ("c", 0)):
+            for col, src in (("x", "n_taken_up"), ("n", "n_observed")):
+                key = (src, recent, z)
+                out[f"{col}_{arm}_{name}"] = agg[key].to_numpy() if key in agg.columns else 0.0
+    first_recent = per[per["from_end"] < n_recent].groupby("site_id")["period_start"].min()
+    out["recent_from"] = out["site_id"].map(first_recent)
+    out["n_periods"] = out["site_id"].map(per.groupby("site_id")["n_periods"].first()).astype(int)
+    return out[cols]
+
+
+def _first_stage_decline(inputs: RunInputs, a) -> list[dict]:
+    w = decline_windows(inputs.cohort_counts, a.first_stage_decline_periods)
+    if w.empty:
+        return []
+    n = {k: _float(w[k]) for k in w.columns if k.startswith(("x_", "n_")) and k != "n_periods"}
+    eligible = ((w["n_periods"].to_numpy() > a.first_stage_decline_periods)
+                & (n["n_t_recent"] > 0) & (n["n_c_recent"] > 0) & (n["n_t_early"] > 0) & (n["n_c_early"] > 0))
+    test = _difference_test(n["x_t_recent"], n["n_t_recent"], n["x_c_recent"], n["n_c_recent"],
+                            n["x_t_early"], n["n_t_early"], n["x_c_early"], n["n_c_early"])
+    p_raw = np.where(eligible, test["p_less"], np.nan)
+    p_adj = _bh(p_raw)
+    hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
+    out = []
+    for i in np.flatnonzero(hit):
+        fs_r, fs_e = test["fs_recent"][i], test["fs_early"][i]
+        site = w.at[i, "site_id"]
+        out.append(_alert(
+            "first_stage_decline", site, None, fs_r - fs_e, a.fdr_q, p_adj[i],
+            f"The first stage (treated minus control uptake) fell to {_pct(fs_r)} in the last "
+            f"{a.first_stage_decline_periods} cohorts (from the cohort of {w.at[i, 'recent_from']}) from "
+            f"{_pct(fs_e)} in earlier cohorts (one-sided test, BH-adjusted p = {_p(p_adj[i])} at "
+            f"q = {a.fdr_q:g})."))
+    return out
+
+
+def _drift(drift: DriftResult) -> list[dict]:
+    out = []
+    for i in np.flatnonzero(np.asarray(drift.signalled, dtype=bool)):
+        arm = drift.arm[i]
+        rule = "control_uptake_drift" if arm == "control" else "treatment_uptake_drift"
+        what = "contamination: controls are taking up the programme" if arm == "control" else \
+            "offers may not be reaching people"
+        peak, h, now = float(drift.peak_statistic[i]), float(drift.h[i]), float(drift.statistic[i])
+        now_txt = "" if abs(now - peak) < 0.05 else f", {now:.1f} after the latest cohort"
+        n_rec = int(drift.n_recent_periods[i])
+        out.append(_alert(
+            rule, drift.site_id[i], None, peak, h, None,
+            f"{arm.capitalize()} uptake {_pct(drift.recent_uptake[i])} in the {n_rec} cohort"
+            f"{'s' if n_rec != 1 else ''} from {drift.change_period[i]} on vs {_pct(drift.earlier_uptake[i])} "
+            f"before (CUSUM {peak:.1f} >= h {h:.1f} since the cohort of {drift.first_signal_period[i]}"
+            f"{now_txt}; in-control level {_pct(drift.p0[i])}): {what}."))
+    return out
+
+
+def _assigned_by_site(inputs: RunInputs) -> pd.DataFrame:
+    f = _counts(inputs.cohort_counts)
+    if f.empty:
+        return pd.DataFrame({"site_id": pd.Series(dtype=object), "n_t": pd.Series(dtype=float),
+                             "n_c": pd.Series(dtype=float)})
+    g = f.groupby(["site_id", "z"])["n_assigned"].sum().unstack("z", fill_value=0.0)
+    return pd.DataFrame({"site_id": g.index.astype(str),
+                         "n_t": g[1].to_numpy(float) if 1 in g.columns else np.zeros(len(g)),
+                         "n_c": g[0].to_numpy(float) if 0 in g.columns else np.zeros(len(g))})
+
+
+def _sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+    arms = _assigned_by_site(inputs)
+    arms = arms[(arms.n_t + arms.n_c) > 0].reset_index(drop=True)
+    if arms.empty:
+        return []
+    share = np.array([ctx.config.treatment_share(s) for s in arms.site_id], dtype=float)
+    res = _srm_test(arms.n_t.to_numpy(float), arms.n_c.to_numpy(float), share)
+    hit = np.isfinite(res["p"]) & (res["p"] < a.srm_p_value)
+    out = []
+    for i in np.flatnonzero(hit):
+        n_t, n_c = int(arms.at[i, "n_t"]), int(arms.at[i, "n_c"])
+        obs = n_t / (n_t + n_c)
+        out.append(_alert(
+            "sample_ratio_mismatch", arms.at[i, "site_id"], None, obs, a.srm_p_value, res["p"][i],
+            f"{n_t} treated and {n_c} controls assigned ({_pct(obs)} treated) against the designed "
+            f"{_pct(share[i])}: chi-square {res['stat'][i]:.1f}, p = {_p(res['p'][i])} < {a.srm_p_value:g}. "
+            f"Check the randomisation and how assignments are recorded."))
+    return out
+
+
+def _differential_missing(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
+    nt_a = _float(rows["n_treatment_assigned"])
+    nc_a = _float(rows["n_control_assigned"])
+    mt = _float(rows["missing_outcome_treatment"])
+    mc = _float(rows["missing_outcome_control"])
+    measured = _float(rows["n_treatment"]) + _float(rows["n_control"])
+    eligible = (nt_a > 0) & (nc_a > 0) & (measured > 0)
+    res = _two_prop(np.where(eligible, mt, 0.0), np.where(eligible, nt_a, 1.0),
+                    np.where(eligible, mc, 0.0), np.where(eligible, nc_a, 1.0))
+    p_adj = _bh(np.where(eligible, res["p"], np.nan))
+    hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
+    out = []
+    for i in np.flatnonzero(hit):
+        st, sc = mt[i] / nt_a[i], mc[i] / nc_a[i]
+        out.append(_alert(
+            "differential_missing_outcomes", rows.at[i, "site_id"], outcome, st - sc, a.fdr_q, p_adj[i],
+            f"Outcome missing for {_pct(st)} of treated ({int(mt[i])} of {int(nt_a[i])}) vs {_pct(sc)} of controls "
+            f"({int(mc[i])} of {int(nc_a[i])}) (two-sided test, BH-adjusted p = {_p(p_adj[i])} at "
+            f"q = {a.fdr_q:g}): the ITT and CACE of this site may be biased by who is measured."))
+    return out
+
+
+def _stale(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+    act = inputs.site_activity
+    if act is not None and len(act) and {"site_id", "last_record_on"} <= set(act.columns):
+        last = pd.Series(pd.to_datetime(act["last_record_on"], errors="coerce").to_numpy(),
+                         index=act["site_id"].astype(str)).dropna()
+        last = last[~last.index.duplicated()]
+    else:
+        last = pd.Series(dtype="datetime64[ns]")
+    sites = sorted({s.site_id for s in ctx.config.sites} | set(inputs.sites) | set(last.index))
+    when = last.reindex(sites)
+    days = (pd.Timestamp(ctx.as_of) - when).dt.days.to_numpy(dtype=float)
+    hit = ~np.isfinite(days) | (days > a.stale_days)
+    out = []
+    for i in np.flatnonzero(hit):  # one message per raised alert
+        s = sites[i]
+        if not np.isfinite(days[i]):
+            out.append(_alert("stale_site", s, None, None, a.stale_days, None,
+                              f"No records received from this site by {ctx.as_of}."))
+            continue
+        out.append(_alert("stale_site", s, None, days[i], a.stale_days, None,
+                          f"Latest record dated {when.iloc[i].date()}, {int(days[i])} days before the cutoff "
+                          f"{ctx.as_of} (more than {a.stale_days} days): the site may have stopped sending data."))
+    return out
+
+
+def _outliers(rows: pd.DataFrame, outcome: str, pooled_rows: list[dict], influence_rows: list[dict],
+              a) -> list[dict]:
+    reml = [r for r in pooled_rows if r.get("outcome") == outcome and r.get("quantity") == "cace"
+            and r.get("method") == INFLUENCE_METHOD and r.get("group_field") is None]
+    pi_low = clean(reml[0].get("pi_low")) if reml else None
+    pi_high = clean(reml[0].get("pi_high")) if reml else None
+    resid_map = {r["site_id"]: clean(r.get("std_residual")) for r in influence_rows
+                 if r.get("outcome") == outcome and r.get("quantity") == "cace"
+                 and r.get("method") == INFLUENCE_METHOD}
+    resid = pd.to_numeric(rows["site_id"].map(resid_map), errors="coerce").to_numpy(dtype=float)
+    included = rows["included_in_pool"].fillna(False).astype(bool).to_numpy()
+    cace = _float(rows["cace"])
+    has_pi = pi_low is not None and pi_high is not None
+    lo = pi_low if has_pi else -np.inf
+    hi = pi_high if has_pi else np.inf
+    outside = np.isfinite(cace) & ((cace < lo) | (cace > hi))
+    big = np.isfinite(resid) & (np.abs(resid) > a.outlier_std_residual)
+    hit = included & np.isfinite(cace) & (outside | big)
+    pi_txt = (f"the REML prediction interval for a new site is [{pi_low:.2f}, {pi_high:.2f}]" if has_pi
+              else "no prediction interval is available")
+    out = []
+    for i in np.flatnonzero(hit):  # one message per raised alert
+        r = resid[i]
+        if np.isfinite(r):
+            value, threshold, r_txt = r, a.outlier_std_residual, f"standardised residual {r:.1f}"
+        else:
+            value, threshold, r_txt = cace[i], (lo if cace[i] < lo else hi), "no standardised residual"
+        out.append(_alert(
+            "outlier_site", rows.at[i, "site_id"], outcome, value, threshold, None,
+            f"Site CACE {cace[i]:.2f} differs from the other sites: {pi_txt}; {r_txt} (limit "
+            f"{a.outlier_std_residual:g}). The programme may work differently here; check before pooling."))
+    return out
+
+
+def evaluate_rules(inputs: RunInputs, ctx: RunContext, site_rows: list[dict], pooled_rows: list[dict],
+                   influence_rows: list[dict], drift: DriftResult) -> list[dict]:
+    """Alerts active in this run (without lifecycle columns).
+
+    Returns
+    -------
+    list of dict
+        rule, site_id, outcome, value, threshold, p_value, message.
+    """
+    a = ctx.config.alerts
+    outcome = _primary(inputs, ctx)
+    rows = _primary_rows(site_rows, outcome)
+    found: list[dict] = []
+    if len(rows):
+        found += _negative_first_stage(rows, outcome, a)
+        found += _weak_first_stage(rows, outcome, a)
+        found += _differential_missing(rows, outcome, a)
+        found += _outliers(rows, outcome, pooled_rows, influence_rows, a)
+    found += _sample_ratio(inputs, ctx, a)
+    found += _first_stage_decline(inputs, a)
+    found += _drift(drift)
+    found += _stale(inputs, ctx, a)
+    return found
+
+
+# ----------------------------------------------------------------------------- lifecycle
+def _previous_active(prev: pd.DataFrame | None) -> dict[str, dict]:
+    if prev is None or len(prev) == 0 or "alert_key" not in prev.columns or "status" not in prev.columns:
+        return {}
+    active = prev[prev["status"].isin(_ACTIVE)]
+    out: dict[str, dict] = {}
+    for rec in active.to_dict("records"):
+        out.setdefault(str(rec["alert_key"]), rec)
+    return out
+
+
+def _none_if_missing(v):
+    if v is None:
+        return None
+    try:
+        if pd.isna(v):
+            return None
+    except (TypeError, ValueError):
+        pass
+    return v
+
+
+def apply_lifecycle(found: list[dict], previous_alerts: pd.DataFrame | None, run_id: str) -> list[dict]:
+    """Add key, severity, status and first/last-seen run ids; append resolved rows.
+
+    Parameters
+    ----------
+    found : list of dict
+        Alerts active now (from :func:`evaluate_rules`).
+    previous_alerts : DataFrame
+        All alert rows of the previous finished run (not modified).
+    run_id : str
+        This run.
+
+    Returns
+    -------
+    list of dict
+        AlertRow rows, sorted by status (new, ongoing, resolved), severity, rule, site.
+    """
+    prev = _previous_active(previous_alerts)
+    out, seen = [], set()
+    for f in found:
+        key = alert_key(f["rule"], f["site_id"], f["outcome"])
+        if key in seen:
+            continue
+        seen.add(key)
+        before = prev.get(key)
+        out.append({
+            "run_id": run_id, "alert_key": key, "site_id": f["site_id"], "outcome": f["outcome"],
+            "rule": f["rule"], "severity": SEVERITY[f["rule"]],
+            "status": "ongoing" if before is not None else "new",
+            "value": f["value"], "threshold": f["threshold"], "p_value": f["p_value"],
+            "first_seen_run_id": str(before["first_seen_run_id"]) if before is not None else run_id,
+            "last_seen_run_id": run_id, "message": f["message"],
+        })
+    for key, rec in prev.items():
+        if key in seen:
+            continue
+        rule = str(rec.get("rule"))
+        last_seen = _none_if_missing(rec.get("last_seen_run_id")) or _none_if_missing(rec.get("run_id")) or run_id
+        out.append({
+            "run_id": run_id, "alert_key": key, "site_id": _none_if_missing(rec.get("site_id")),
+            "outcome": _none_if_missing(rec.get("outcome")), "rule": rule,
+            "severity": _none_if_missing(rec.get("severity")) or SEVERITY.get(rule, "info"),
+            "status": "resolved",
+            "value": clean(_none_if_missing(rec.get("value"))),
+            "threshold": clean(_none_if_missing(rec.get("threshold"))),
+            "p_value": clean(_none_if_missing(rec.get("p_value"))),
+            "first_seen_run_id": str(_none_if_missing(rec.get("first_seen_run_id")) or last_seen),
+            "last_seen_run_id": str(last_seen),
+            "message": f"resolved: the condition no longer holds in this run (last seen in run {last_seen}). "
+                       f"Previously: {rec.get('message') or ''}".rstrip(),
+        })
+    status_order = {"new": 0, "ongoing": 1, "resolved": 2}
+    out.sort(key=lambda r: (status_order[r["status"]], _SEVERITY_ORDER.get(r["severity"], 9), r["rule"],
+                            r["site_id"] or ""))
+    return out
+
+
+def compute_alerts(inputs: RunInputs, ctx: RunContext, site_rows: list[dict], pooled_rows: list[dict],
+                   influence_rows: list[dict], drift: DriftResult) -> list[dict]:
+    """Rows of ``alerts`` for this run (see the module docstring for rules and lifecycle).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        Uses ``cohort_counts``, ``site_activity``, ``previous_alerts`` (not modified).
+    ctx : RunContext
+        Run id, cutoff date and thresholds (``ctx.config.alerts``).
+    site_rows, pooled_rows, influence_rows : list of dict
+        The run's ``site_estimates``, ``pooled_estimates`` and ``site_influence`` rows.
+    drift : DriftResult
+        Drift charts from :func:`takeup.pipeline.run.trend_rows.compute_trends`.
+
+    Returns
+    -------
+    list of dict
+        Rows with exactly the ``AlertRow`` columns.
+
+    References
+    ----------
+    .. [1] Staiger, D. and Stock, J. H. (1997). Instrumental variables regression
+       with weak instruments. *Econometrica* 65(3), 557-586.
+    .. [2] Lee, D. S., McCrary, J., Moreira, M. J. and Porter, J. (2022). Valid
+       t-ratio inference for IV. *American Economic Review* 112(10), 3260-3290.
+    .. [3] Benjamini, Y. and Hochberg, Y. (1995). Controlling the false discovery
+       rate. *Journal of the Royal Statistical Society B* 57(1), 289-300.
+    .. [4] Fabijan, A. et al. (2019). Diagnosing sample ratio mismatch in online
+       controlled experiments. *KDD '19*, 2156-2164.
+    """
+    found = evaluate_rules(inputs, ctx, site_rows, pooled_rows, influence_rows, drift)
+    return apply_lifecycle(found, inputs.previous_alerts, ctx.run_id)
+
+
+# ----------------------------------------------------------------------------- statistical tests
+# Thin adapters over takeup.pipeline.stats.significance (the tests themselves live there).
+def _bh_adjusted(p: np.ndarray) -> np.ndarray:
+    return np.asarray(significance.benjamini_hochberg(p).p_adjusted, dtype=float)
+
+
+def _srm_test(n_t, n_c, share) -> dict:
+    counts = np.column_stack([n_t, n_c])
+    res = significance.sample_ratio_test(counts, np.column_stack([share, 1.0 - share]))
+    return {"stat": np.asarray(res.chi2, float), "p": np.asarray(res.p_value, float)}
+
+
+def _two_prop(x1, n1, x2, n2) -> dict:
+    res = significance.two_proportion_z(x1, n1, x2, n2, alternative="two-sided")
+    return {"z": np.asarray(res.z, float), "p": np.asarray(res.p_value, float)}
+
+
+def _difference_test(x_t_recent, n_t_recent, x_c_recent, n_c_recent,
+                     x_t_early, n_t_early, x_c_early, n_c_early) -> dict:
+    res = significance.two_proportion_difference_test(x_t_early, n_t_early, x_c_early, n_c_early,
+                                                    x_t_recent, n_t_recent, x_c_recent, n_c_recent,
+                                                    alternative="decline")
+    return {"p_less": np.asarray(res.p_value, float), "fs_recent": np.asarray(res.first_stage_recent, float),
+            "fs_early": np.asarray(res.first_stage_early, float), "z": np.asarray(res.z, float)}

@@ -1,0 +1,188 @@
+"""Everything a monitoring run reads from the warehouse, gathered in one stage.
+
+:func:`collect_inputs` runs the SQL aggregations (DuckDB does the heavy
+lifting) and returns a :class:`RunInputs` of small pandas frames.  All later
+stages (site estimates, pooling, trends, alerts) are pure functions of it,
+so in an orchestrated run they can execute anywhere — in threads or on Dask
+workers — while only the final write touches the warehouse again.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import secrets
+from dataclasses import dataclass, field
+from datetime import date, datetime, timedelta, timezone
+
+import duckdb
+import pandas as pd
+
+from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, cluster_moments, covariate_cells, outcome_names,
+                                 participant_frame, site_outcome_moments)
+from takeup.schemas.config import StudyConfig
+
+__all__ = ["RunContext", "RunInputs", "new_run_context", "collect_inputs", "input_fingerprint"]
+
+
+@dataclass(frozen=True)
+class RunContext:
+    """Identity of one run (serialisable: dates, strings and the config model)."""
+
+    run_id: str
+    as_of: date
+    started_at: datetime          # UTC, naive
+    data_cutoff: datetime         # batches received after this are not read (reproducibility)
+    config: StudyConfig
+    mode: str = "in_process"
+    flow_run_id: str | None = None
+
+    @property
+    def config_hash(self) -> str:
+        return self.config.config_hash()
+
+
+def new_run_context(config: StudyConfig, as_of: date | None = None, mode: str = "in_process",
+                    flow_run_id: str | None = None, data_cutoff: datetime | None = None) -> RunContext:
+    now = datetime.now(timezone.utc).replace(tzinfo=None)
+    run_id = f"r{now:%Y%m%dT%H%M%S%f}-{secrets.token_hex(3)}"
+    return RunContext(run_id=run_id, as_of=as_of or now.date(), started_at=now,
+                      data_cutoff=data_cutoff or now, config=config, mode=mode, flow_run_id=flow_run_id)
+
+
+@dataclass(frozen=True)
+class RunInputs:
+    """Aggregates read from the warehouse for one run."""
+
+    sites: tuple[str, ...]                 # sites with at least one assignment by the cutoff
+    outcomes: tuple[str, ...]
+    moments: pd.DataFrame                  # site x outcome x arm (see sample_sql.site_outcome_moments)
+    clusters: pd.DataFrame | None          # site x outcome x cluster x arm (cluster randomisation only)
+    covariate_cells: pd.DataFrame          # site x covariate x (z, d)
+    cohort_counts: pd.DataFrame            # site x arm x cohort period: n_assigned, n_observed, n_taken_up
+    calendar_counts: pd.DataFrame          # site x arm x calendar period: n_assigned, n_observed, n_taken_up (cumulative)
+    site_activity: pd.DataFrame            # site_id, last_record_on, last_received_at, n_batches
+    previous_alerts: pd.DataFrame          # the previous finished run's alerts (all columns)
+    previous_run_id: str | None
+    n_batches: int
+    input_fingerprint: str
+    participant_frames: dict = field(default_factory=dict)   # (site, outcome) -> frame; adjusted path only
+
+
+def input_fingerprint(con: duckdb.DuckDBPyConnection, data_cutoff: datetime) -> tuple[str, int]:
+    rows = con.execute("SELECT sha256 FROM batches WHERE status = 'loaded' AND received_at <= $c ORDER BY sha256",
+                       {"c": data_cutoff}).fetchall()
+    h = hashlib.sha256()
+    for (s,) in rows:
+        h.update(s.encode())
+    return h.hexdigest(), len(rows)
+
+
+def _period_start_sql(col: str, start_param: str = "$origin") -> str:
+    """First day of the ``$period_days`` period containing ``col``, counted from ``$origin``."""
+    return (f"({start_param} + to_days(CAST(floor(date_diff('day', {start_param}, {col}) / $period_days) "
+            f"* $period_days AS INTEGER)))")
+
+
+def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[pd.DataFrame, pd.DataFrame]:
+    period = ctx.config.trends.period_days
+    origin = con.execute("SELECT min(assigned_on) FROM _participants").fetchall()[0][0]
+    if origin is None:
+        empty = pd.DataFrame(columns=["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"])
+        return empty, empty.copy()
+    # align periods to the Monday on or before the first assignment when weekly
+    if period == 7:
+        origin = origin - timedelta(days=origin.weekday())
+    params = {"origin": origin, "period_days": period}
+    cohort = con.execute(f"""
+        SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
+               count(*) AS n_assigned, count(*) FILTER (WHERE uptake_observed) AS n_observed,
+               CAST(sum(d) AS BIGINT) AS n_taken_up
+        FROM _participants GROUP BY ALL ORDER BY ALL
+    """, params).df()
+    # calendar basis: status at the end of each period among those assigned by then.  Computed from
+    # per-period counts of assignments, first uptake reports and first "took up" reports, then
+    # cumulated over the (small) period grid: no participant x period join.
+    events = con.execute(f"""
+        SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
+               count(*) AS n_assigned, 0 AS n_observed, 0 AS n_taken_up FROM _participants GROUP BY ALL
+        UNION ALL
+        SELECT site_id, z, CAST({_period_start_sql('first_obs')} AS DATE), 0, count(*), 0
+        FROM _participants WHERE first_obs IS NOT NULL GROUP BY ALL
+        UNION ALL
+        SELECT site_id, z, CAST({_period_start_sql('first_yes')} AS DATE), 0, 0, count(*)
+        FROM _participants WHERE first_yes IS NOT NULL GROUP BY ALL
+    """, params).df()
+    calendar = _cumulate_calendar(events, origin, ctx.as_of, period)
+    return cohort, calendar
+
+
+def _cumulate_calendar(events: pd.DataFrame, origin: date, as_of: date, period: int) -> pd.DataFrame:
+    """Cumulative counts per site x arm on the regular period grid from ``origin`` to ``as_of``."""
+    cols = ["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"]
+    if events.empty:
+        return pd.DataFrame(columns=cols)
+    grid = list(pd.date_range(pd.Timestamp(origin), pd.Timestamp(as_of), freq=f"{period}D").date)
+    ev = events.assign(period_start=pd.to_datetime(events.period_start).dt.date)
+    ev = ev[ev.period_start.isin(set(grid))]
+    parts = []
+    for col in cols[3:]:
+        wide = ev.pivot_table(index=["site_id", "z"], columns="period_start", values=col, aggfunc="sum",
+                              fill_value=0).reindex(columns=grid, fill_value=0).cumsum(axis=1)
+        parts.append(wide.stack().rename(col))
+    out = pd.concat(parts, axis=1).fillna(0).astype("int64").reset_index()
+    out.columns = cols
+    out = out[out.n_assigned > 0].sort_values(["site_id", "z", "period_start"]).reset_index(drop=True)
+    return out
+
+
+def _site_activity(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> pd.DataFrame:
+    return con.execute("""
+        WITH ok AS (SELECT batch_id, received_at FROM batches WHERE status = 'loaded' AND received_at <= $cutoff),
+        rec AS (
+            SELECT site_id, batch_id, assigned_on AS d FROM assignments WHERE assigned_on <= $as_of
+            UNION ALL SELECT site_id, batch_id, observed_on FROM uptake_events WHERE observed_on <= $as_of
+            UNION ALL SELECT site_id, batch_id, measured_on FROM outcome_measurements WHERE measured_on <= $as_of
+        )
+        SELECT rec.site_id, max(rec.d) AS last_record_on, max(ok.received_at) AS last_received_at,
+               count(DISTINCT rec.batch_id) AS n_batches
+        FROM rec JOIN ok USING (batch_id) GROUP BY rec.site_id ORDER BY rec.site_id
+    """, {"as_of": ctx.as_of, "cutoff": ctx.data_cutoff}).df()
+
+
+def _previous_alerts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[str | None, pd.DataFrame]:
+    prev = con.execute("SELECT run_id FROM runs WHERE status IN ('ok', 'partial') AND started_at < $t "
+                       "ORDER BY started_at DESC, run_id DESC LIMIT 1", {"t": ctx.started_at}).fetchone()
+    if prev is None:
+        return None, con.execute("SELECT * FROM alerts WHERE FALSE").df()
+    return prev[0], con.execute("SELECT * FROM alerts WHERE run_id = $r", {"r": prev[0]}).df()
+
+
+def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs:
+    """Run every SQL aggregation of the run and return the small frames."""
+    config = ctx.config
+    spec = SampleSpec.from_config(config, ctx.as_of, ctx.data_cutoff)
+    outcomes = outcome_names(con, config)
+    fingerprint, n_batches = input_fingerprint(con, ctx.data_cutoff)
+    build_participants(con, spec, outcomes)
+    try:
+        sites = tuple(r[0] for r in con.execute("SELECT DISTINCT site_id FROM _participants ORDER BY 1").fetchall())
+        moments = site_outcome_moments(con)
+        clusters = cluster_moments(con) if config.randomisation_unit == "cluster" else None
+        cells = covariate_cells(con, spec, list(config.covariates))
+        cohort, calendar = _trend_counts(con, ctx)
+        activity = _site_activity(con, ctx)
+        prev_id, prev = _previous_alerts(con, ctx)
+        frames = {}
+        if config.estimation.adjust_covariates and config.covariates:
+            for site in sites:
+                for outcome in outcomes:
+                    frames[(site, outcome)] = participant_frame(con, site, outcome, list(config.covariates),
+                                                                ctx.data_cutoff)
+    finally:
+        con.execute("DROP TABLE IF EXISTS _sample")
+        con.execute("DROP TABLE IF EXISTS _participants")
+    return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,
+                     covariate_cells=cells, cohort_counts=cohort, calendar_counts=calendar,
+                     site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,
+                     n_batches=n_batches, input_fingerprint=fingerprint, participant_frames=frames)
+

@@ -1,0 +1,235 @@
+"""The analysis sample and its sufficient statistics, computed in DuckDB.
+
+Analysis sample as of a cutoff date (``$as_of``), using only batches loaded
+at or before the run's data cutoff (``$data_cutoff``, a timestamp) so that a
+run can be recomputed exactly later:
+
+* assigned participants: ``assignments.assigned_on <= as_of``;
+* uptake ``D`` = 1 when any uptake observation on or before the cutoff says
+  ``took_up``; 0 otherwise (no observation yet counts as not taken up —
+  ``uptake_observed`` tells them apart for the trends);
+* outcome ``Y``: measurements of that outcome with
+  ``min_days <= measured_on - assigned_on <= max_days`` and
+  ``measured_on <= as_of``; with several, the study's ``follow_up.rule``
+  picks the last (default), the first, or their mean.  Participants
+  without such a measurement have a missing outcome: they are counted
+  (``missing_outcome_*``) and left out of the outcome moments.
+
+Only aggregates leave DuckDB: one row per site x outcome x arm (and per
+cluster cell, per covariate cell) — never participant rows.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import date, datetime
+
+import duckdb
+import numpy as np
+import pandas as pd
+
+from takeup.pipeline.stats.estimators.moments import ArmMoments, ClusterMoments, SiteMoments
+from takeup.schemas.config import StudyConfig
+
+__all__ = ["SampleSpec", "build_participants", "site_outcome_moments", "cluster_moments", "covariate_cells",
+           "outcome_names", "MomentTable", "moments_for_outcome", "participant_frame"]
+
+
+@dataclass(frozen=True)
+class SampleSpec:
+    as_of: date
+    data_cutoff: datetime
+    min_days: int
+    max_days: int
+    rule: str
+
+    @classmethod
+    def from_config(cls, config: StudyConfig, as_of: date, data_cutoff: datetime) -> "SampleSpec":
+        return cls(as_of, data_cutoff, config.follow_up.min_days, config.follow_up.max_days, config.follow_up.rule)
+
+    def params(self) -> dict:
+        return {"as_of": self.as_of, "data_cutoff": self.data_cutoff}
+
+
+_AGG = {"last": "arg_max(m.value, m.measured_on)", "first": "arg_min(m.value, m.measured_on)", "mean": "avg(m.value)"}
+
+
+def outcome_names(con: duckdb.DuckDBPyConnection, config: StudyConfig) -> list[str]:
+    """Declared outcomes, or (no declaration) every outcome name present in the warehouse."""
+    if config.outcomes:
+        return [o.name for o in config.outcomes]
+    return [r[0] for r in con.execute("SELECT DISTINCT outcome FROM outcome_measurements ORDER BY 1").fetchall()]
+
+
+def _batch_filter(con: duckdb.DuckDBPyConnection, spec: SampleSpec, alias: str) -> str:
+    """SQL restricting ``alias`` to batches received by the data cutoff ('' when every batch is)."""
+    later = con.execute("SELECT count(*) FROM batches WHERE received_at > $c", {"c": spec.data_cutoff}).fetchone()[0]
+    if not later:
+        return ""
+    return (f" AND {alias}.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' "
+            f"AND received_at <= $data_cutoff)")
+
+
+def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcomes: list[str]) -> None:
+    """Materialise the temp tables of the analysis sample.
+
+    ``_participants``: one row per assigned participant (site_id, participant_key, cluster_id,
+    assigned_on, z, d, uptake_observed, first_obs, first_yes — the first uptake report and the
+    first report of uptake, for the calendar trends).
+    ``_sample``: one row per assigned participant x outcome (site_id, cluster_id, z, d, outcome, y).
+
+    Joins use ``participant_key`` alone: the pseudonym already encodes the site.
+    """
+    agg = _AGG[spec.rule]
+    fa, fu, fo = (_batch_filter(con, spec, t) for t in ("t", "t", "t"))
+    con.execute(f"""
+        CREATE OR REPLACE TEMP TABLE _participants AS
+        WITH u AS (
+            SELECT t.participant_key, bool_or(t.took_up) AS took_up, min(t.observed_on) AS first_obs,
+                   min(t.observed_on) FILTER (WHERE t.took_up) AS first_yes
+            FROM uptake_events t WHERE t.observed_on <= $as_of{fu}
+            GROUP BY t.participant_key
+        )
+        SELECT t.site_id, t.participant_key, t.cluster_id, t.assigned_on,
+               CASE WHEN t.arm = 'treatment' THEN 1 ELSE 0 END AS z,
+               CASE WHEN coalesce(u.took_up, FALSE) THEN 1.0 ELSE 0.0 END AS d,
+               u.took_up IS NOT NULL AS uptake_observed,
+               CASE WHEN u.first_obs IS NOT NULL THEN greatest(u.first_obs, t.assigned_on) END AS first_obs,
+               CASE WHEN u.first_yes IS NOT NULL THEN greatest(u.first_yes, t.assigned_on) END AS first_yes
+        FROM assignments t LEFT JOIN u USING (participant_key)
+        WHERE t.assigned_on <= $as_of{fa}
+    """, spec.params() if fa or fu else {"as_of": spec.as_of})
+    if not outcomes:
+        con.execute("CREATE OR REPLACE TEMP TABLE _sample AS SELECT site_id, participant_key, cluster_id, z, d, "
+                    "uptake_observed, CAST(NULL AS VARCHAR) AS outcome, CAST(NULL AS DOUBLE) AS y "
+                    "FROM _participants WHERE FALSE")
+        return
+    con.execute(f"""
+        CREATE OR REPLACE TEMP TABLE _sample AS
+        WITH o AS (
+            SELECT t.participant_key, t.outcome, {agg.replace('m.', 't.')} AS y
+            FROM outcome_measurements t JOIN _participants a USING (participant_key)
+            WHERE t.measured_on <= $as_of{fo}
+              AND date_diff('day', a.assigned_on, t.measured_on) BETWEEN $min_days AND $max_days
+              AND list_contains($outcomes, t.outcome)
+            GROUP BY t.participant_key, t.outcome
+        ), names AS (SELECT unnest($outcomes) AS outcome)
+        SELECT a.site_id, a.participant_key, a.cluster_id, a.z, a.d, a.uptake_observed, names.outcome, o.y
+        FROM _participants a CROSS JOIN names
+        LEFT JOIN o ON o.participant_key = a.participant_key AND o.outcome = names.outcome
+    """, {**(spec.params() if fo else {"as_of": spec.as_of}), "min_days": spec.min_days,
+          "max_days": spec.max_days, "outcomes": list(outcomes)})
+
+
+def site_outcome_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """One row per site x outcome x arm with counts and the sums of D, Y, D², Y², DY.
+
+    ``n``/``sum_*`` cover the analysis sample (outcome observed); ``n_assigned``
+    and ``sum_d_assigned`` cover every assigned participant (first stage without
+    outcomes); ``n_uptake_observed`` counts those with an uptake report.
+    """
+    return con.execute("""
+        SELECT site_id, outcome, z,
+               count(*) AS n_assigned,
+               sum(d) AS sum_d_assigned,
+               count(*) FILTER (WHERE uptake_observed) AS n_uptake_observed,
+               count(y) AS n,
+               coalesce(sum(d) FILTER (WHERE y IS NOT NULL), 0) AS sum_d,
+               coalesce(sum(y), 0) AS sum_y,
+               coalesce(sum(d * d) FILTER (WHERE y IS NOT NULL), 0) AS sum_dd,
+               coalesce(sum(y * y), 0) AS sum_yy,
+               coalesce(sum(d * y), 0) AS sum_dy
+        FROM _sample GROUP BY site_id, outcome, z ORDER BY site_id, outcome, z
+    """).df()
+
+
+def cluster_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """One row per site x outcome x cluster x arm (analysis sample), for CR1 variances."""
+    return con.execute("""
+        SELECT site_id, outcome, coalesce(cluster_id, '') AS cluster_id, z,
+               count(y) AS n, coalesce(sum(d) FILTER (WHERE y IS NOT NULL), 0) AS sum_d,
+               coalesce(sum(y), 0) AS sum_y
+        FROM _sample GROUP BY ALL HAVING count(y) > 0 ORDER BY ALL
+    """).df()
+
+
+def covariate_cells(con: duckdb.DuckDBPyConnection, spec: SampleSpec, covariates: list[str]) -> pd.DataFrame:
+    """Per site x covariate x (z, d) cell: count and sum of the covariate (reported values only)."""
+    if not covariates:
+        return pd.DataFrame(columns=["site_id", "covariate", "z", "d", "n", "sum_x"])
+    return con.execute("""
+        SELECT p.site_id, c.covariate, p.z, CAST(p.d AS INTEGER) AS d, count(c.value) AS n, coalesce(sum(c.value), 0) AS sum_x
+        FROM _participants p JOIN assignment_covariates c USING (participant_key)
+        WHERE list_contains($covs, c.covariate) AND c.value IS NOT NULL
+          AND c.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $data_cutoff)
+        GROUP BY ALL ORDER BY ALL
+    """, {"covs": list(covariates), "data_cutoff": spec.data_cutoff}).df()
+
+
+@dataclass(frozen=True)
+class MomentTable:
+    """Moments of one outcome for the sites in ``sites`` (same order everywhere)."""
+
+    outcome: str
+    sites: tuple[str, ...]
+    moments: SiteMoments            # analysis sample
+    n_assigned: np.ndarray          # shape (k, 2): [:, 0] control, [:, 1] treatment
+    sum_d_assigned: np.ndarray
+    first_stage_moments: SiteMoments  # all assigned, Y := 0 (first stage only)
+
+
+def _arm(frame: pd.DataFrame, z: int, sites: list[str], cols: dict[str, str]) -> dict[str, np.ndarray]:
+    sub = frame[frame.z == z].set_index("site_id").reindex(sites)
+    return {k: sub[v].fillna(0).to_numpy(dtype=float) for k, v in cols.items()}
+
+
+def moments_for_outcome(frame: pd.DataFrame, outcome: str, sites: list[str]) -> MomentTable:
+    """Arrange the SQL moments of one outcome into :class:`SiteMoments` (site order ``sites``)."""
+    f = frame[frame.outcome == outcome]
+    main = {"n": "n", "sum_d": "sum_d", "sum_y": "sum_y", "sum_dd": "sum_dd", "sum_yy": "sum_yy", "sum_dy": "sum_dy"}
+    t = _arm(f, 1, sites, main)
+    c = _arm(f, 0, sites, main)
+    fs_cols = {"n": "n_assigned", "sum_d": "sum_d_assigned"}
+    ft = _arm(f, 1, sites, fs_cols)
+    fc = _arm(f, 0, sites, fs_cols)
+
+    def fs_arm(a):
+        zero = np.zeros_like(a["n"])
+        return ArmMoments(n=a["n"], sum_d=a["sum_d"], sum_y=zero, sum_dd=a["sum_d"], sum_yy=zero, sum_dy=zero)
+
+    return MomentTable(
+        outcome=outcome, sites=tuple(sites),
+        moments=SiteMoments(treated=ArmMoments(**t), control=ArmMoments(**c)),
+        n_assigned=np.column_stack([fc["n"], ft["n"]]),
+        sum_d_assigned=np.column_stack([fc["sum_d"], ft["sum_d"]]),
+        first_stage_moments=SiteMoments(treated=fs_arm(ft), control=fs_arm(fc)),
+    )
+
+
+def cluster_moments_for_outcome(frame: pd.DataFrame, outcome: str, sites: list[str]) -> ClusterMoments:
+    f = frame[frame.outcome == outcome]
+    pos = {s: i for i, s in enumerate(sites)}
+    f = f[f.site_id.isin(pos)]
+    clusters = pd.factorize(f.site_id + "\x1f" + f.cluster_id)[0]
+    return ClusterMoments(site_index=f.site_id.map(pos).to_numpy(), cluster_index=clusters,
+                          z=f.z.to_numpy(dtype=float), n=f.n.to_numpy(dtype=float),
+                          sum_d=f.sum_d.to_numpy(dtype=float), sum_y=f.sum_y.to_numpy(dtype=float))
+
+
+def participant_frame(con: duckdb.DuckDBPyConnection, site_id: str, outcome: str, covariates: list[str],
+                      data_cutoff: datetime) -> pd.DataFrame:
+    """Participant rows of one site (complete outcome) with covariates pivoted: the covariate-adjusted path only."""
+    cov_sql = ", ".join(f"max(c.value) FILTER (WHERE c.covariate = $cov{i}) AS \"{name}\""
+                        for i, name in enumerate(covariates, start=1))
+    params = {f"cov{i}": name for i, name in enumerate(covariates, start=1)}
+    select_cov = (", " + cov_sql) if covariates else ""
+    sql = f"""
+        SELECT any_value(s.z) AS z, any_value(s.d) AS d, any_value(s.y) AS y,
+               any_value(s.cluster_id) AS cluster_id {select_cov}
+        FROM _sample s LEFT JOIN assignment_covariates c
+          ON c.participant_key = s.participant_key
+         AND c.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $cutoff)
+        WHERE s.site_id = $site AND s.outcome = $outcome AND s.y IS NOT NULL
+        GROUP BY s.participant_key ORDER BY s.participant_key
+    """
+    return con.execute(sql, {"site": site_id, "outcome": outcome, "cutoff": data_cutoff, **params}).df()

@@ -1,0 +1,190 @@
+"""Per-site estimates table: moments -> Wald/2SLS, weak-IV sets, complier means.
+
+The numbers come from :mod:`takeup.pipeline.stats.estimators`; this module only lines
+them up as rows of ``site_estimates`` (one per site x outcome x spec) and
+applies the documented rule for entering the pooled CACE:
+
+    a site enters the CACE pool when its status is ``ok``, its CACE and
+    standard error are defined, and its first-stage F is at least
+    ``estimation.pool_min_first_stage_f`` (default 10, the Staiger & Stock
+    rule of thumb).  ITT and complier-share pools use every site whose
+    estimate and standard error are defined.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from takeup.pipeline.stats.estimators.complier_means import complier_outcome_means, kappa_complier_means
+from takeup.pipeline.stats.estimators.moments import ClusterMoments
+from takeup.pipeline.stats.estimators.wald import wald_estimates
+from takeup.pipeline.stats.estimators.weak_iv import anderson_rubin_set, tf_interval
+from takeup.pipeline.run.sample_sql import MomentTable
+from takeup.schemas.config import StudyConfig
+
+__all__ = ["estimate_sites", "complier_profile_rows", "adjusted_row", "clean"]
+
+_AR_KINDS = {"interval", "two_rays", "real_line", "empty"}
+
+
+def clean(x):
+    """A float for the table: None for NaN/inf/None (never write NaN or inf)."""
+    if x is None:
+        return None
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def _join_notes(*notes) -> str | None:
+    parts = []
+    for n in notes:
+        if n:
+            for p in str(n).split("; "):
+                if p and p not in parts:
+                    parts.append(p)
+    return "; ".join(parts) if parts else None
+
+
+def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
+                   clusters: ClusterMoments | None = None) -> list[dict]:
+    """Rows of ``site_estimates`` (spec ``unadjusted``) for one outcome."""
+    level = config.estimation.level
+    est = wald_estimates(table.moments, clusters=clusters, level=level)
+    fs_only = wald_estimates(table.first_stage_moments, level=level)
+    ar = anderson_rubin_set(est.itt, est.complier_share, est.itt_se ** 2, est.complier_share_se ** 2,
+                            est.cov_itt_fs, level=level)
+    tf = tf_interval(est.cace, est.cace_se, est.first_stage_f)
+    cm = complier_outcome_means(table.moments)
+    floor = config.estimation.pool_min_first_stage_f
+    rows = []
+    m = table.moments
+    for i, site in enumerate(table.sites):
+        n_t, n_c = int(m.treated.n[i]), int(m.control.n[i])
+        nat_c, nat_t = int(table.n_assigned[i, 0]), int(table.n_assigned[i, 1])
+        no_outcomes = n_t == 0 and n_c == 0
+        src = fs_only if no_outcomes else est
+        status = str(src.status[i])
+        note = src.note[i]
+        if no_outcomes:
+            status = "no_outcomes" if status in ("ok", "negative_first_stage", "constant_outcome",
+                                                 "zero_cace_variance") else status
+            # keep the first-stage notes only: the first-stage-only moments carry Y := 0, so their
+            # outcome notes (constant outcome, vanishing residuals) say nothing about this site
+            fs_notes = [p for p in str(src.note[i] or "").split("; ")
+                        if p and "ITT" not in p and "CACE" not in p and "outcome" not in p]
+            note = _join_notes("no outcome measurements in the follow-up window yet: ITT and CACE are "
+                               "not available; uptake and first stage use all assigned participants", *fs_notes)
+        ar_kind = str(ar.kind[i])
+        ar_ok = (not no_outcomes) and ar_kind in _AR_KINDS
+        f_stat = clean(src.first_stage_f[i])
+        row = {
+            "run_id": run_id, "site_id": site, "outcome": table.outcome, "spec": "unadjusted",
+            "n_treatment": n_t, "n_control": n_c,
+            "n_treatment_assigned": nat_t, "n_control_assigned": nat_c,
+            "missing_outcome_treatment": nat_t - n_t, "missing_outcome_control": nat_c - n_c,
+            "uptake_treatment": clean(src.uptake_treatment[i]), "uptake_control": clean(src.uptake_control[i]),
+            "complier_share": clean(src.complier_share[i]), "complier_share_se": clean(src.complier_share_se[i]),
+            "always_taker_share": clean(src.always_taker_share[i]),
+            "never_taker_share": clean(src.never_taker_share[i]),
+            "itt": None if no_outcomes else clean(est.itt[i]),
+            "itt_se": None if no_outcomes else clean(est.itt_se[i]),
+            "cace": None if no_outcomes else clean(est.cace[i]),
+            "cace_se": None if no_outcomes else clean(est.cace_se[i]),
+            "cace_ci_low": None if no_outcomes else clean(est.cace_ci_low[i]),
+            "cace_ci_high": None if no_outcomes else clean(est.cace_ci_high[i]),
+            "first_stage_f": f_stat,
+            "ar_set": ar_kind if ar_ok else None,
+            "ar_ci_low": clean(ar.low[i]) if ar_ok else None,
+            "ar_ci_high": clean(ar.high[i]) if ar_ok else None,
+            "tf_ci_low": None if no_outcomes else clean(tf.low[i]),
+            "tf_ci_high": None if no_outcomes else clean(tf.high[i]),
+            "tf_se": None if no_outcomes else clean(tf.se[i]),
+            "se_type": src.se_type,
+            "n_clusters": (int(src.n_clusters[i]) if clusters is not None and np.isfinite(src.n_clusters[i])
+                           else None),
+            "complier_mean_treated": None if no_outcomes else clean(cm.complier_treated[i]),
+            "complier_mean_untreated": None if no_outcomes else clean(cm.complier_control[i]),
+            "status": status,
+        }
+        extra_notes = []
+        if not no_outcomes and ar_kind not in _AR_KINDS and ar.note[i]:
+            extra_notes.append(f"Anderson-Rubin set not available: {ar.note[i]}")
+        elif ar_ok and ar_kind != "interval" and ar.note[i]:
+            extra_notes.append(str(ar.note[i]))
+        if not no_outcomes and row["cace"] is not None and row["tf_ci_low"] is None and tf.note[i]:
+            extra_notes.append(str(tf.note[i]))
+        # the pooling rule
+        reason = None
+        if status != "ok":
+            reason = f"status {status}"
+        elif row["cace"] is None or row["cace_se"] is None:
+            reason = "CACE or its standard error not available"
+        elif f_stat is None or f_stat < floor:
+            reason = f"first-stage F {f_stat:.2f} below the pooling floor {floor:g}" if f_stat is not None \
+                else "first-stage F not available"
+        row["included_in_pool"] = reason is None
+        row["pool_exclusion_reason"] = reason
+        row["note"] = _join_notes(note, *extra_notes)
+        rows.append(row)
+    return rows
+
+
+def adjusted_row(base: dict, fit, run_id: str) -> dict:
+    """A ``covariate_adjusted`` row from an :class:`AdjustedFit` and the site's unadjusted row."""
+    keep = ("site_id", "outcome", "n_treatment", "n_control", "n_treatment_assigned", "n_control_assigned",
+            "missing_outcome_treatment", "missing_outcome_control", "uptake_treatment", "uptake_control",
+            "always_taker_share", "never_taker_share", "complier_mean_treated", "complier_mean_untreated")
+    row = {k: base[k] for k in keep}
+    tf = tf_interval(np.array([fit.cace]), np.array([fit.cace_se]), np.array([fit.first_stage_f]))
+    row.update({
+        "run_id": run_id, "spec": "covariate_adjusted",
+        "complier_share": clean(fit.first_stage_coef), "complier_share_se": clean(fit.first_stage_se),
+        "itt": None, "itt_se": None,
+        "cace": clean(fit.cace), "cace_se": clean(fit.cace_se),
+        "cace_ci_low": clean(fit.ci_low), "cace_ci_high": clean(fit.ci_high),
+        "first_stage_f": clean(fit.first_stage_f), "ar_set": None, "ar_ci_low": None, "ar_ci_high": None,
+        "tf_ci_low": clean(tf.low[0]), "tf_ci_high": clean(tf.high[0]), "tf_se": clean(tf.se[0]),
+        "se_type": fit.se_type, "n_clusters": None, "included_in_pool": False,
+        "pool_exclusion_reason": "covariate-adjusted rows are reported, not pooled",
+        "status": fit.status,
+        "note": _join_notes(fit.note or None, "complier_share here is the covariate-adjusted first-stage "
+                                              "coefficient; ITT is reported on the unadjusted row"),
+    })
+    return row
+
+
+def complier_profile_rows(cells: pd.DataFrame, sites: tuple[str, ...], covariates: list[str],
+                          run_id: str) -> list[dict]:
+    """Rows of ``complier_profile`` from per-site x covariate x (z, d) cell sums."""
+    if not covariates or cells.empty:
+        return []
+    k = len(sites)
+    pos = {s: i for i, s in enumerate(sites)}
+    rows = []
+    for j, cov in enumerate(covariates):
+        n_cells = np.zeros((k, 2, 2))
+        sx = np.zeros((k, 2, 2))
+        sub = cells[cells.covariate == cov]
+        sub = sub[sub.site_id.isin(pos)]
+        si = sub.site_id.map(pos).to_numpy()
+        zi = sub.z.to_numpy(dtype=int)
+        di = sub.d.to_numpy(dtype=int)
+        np.add.at(n_cells, (si, zi, di), sub.n.to_numpy(dtype=float))
+        np.add.at(sx, (si, zi, di), sub.sum_x.to_numpy(dtype=float))
+        km = kappa_complier_means(n_cells, sx)
+        for i, site in enumerate(sites):
+            rows.append({
+                "run_id": run_id, "site_id": site, "covariate": cov, "n": int(n_cells[i].sum()),
+                "mean_all": clean(km.overall_mean[i]), "mean_compliers": clean(km.complier_mean[i]),
+                "mean_always_takers": clean(km.always_taker_mean[i]),
+                "mean_never_takers": clean(km.never_taker_mean[i]),
+                "note": km.note[i] if km.note[i] else None,
+            })
+    return rows

@@ -1,0 +1,230 @@
+"""One monitoring run: read aggregates, estimate, pool, follow trends, raise alerts, write.
+
+The run is an ordered list of stages, :data:`STAGES`, defined here once.  Each
+entry names a plain function; the in-process runner (:func:`run_monitoring`)
+calls the functions directly, the Prefect flow (``takeup.flows.monitor``)
+wraps each as a task.  Both go through :func:`compute_all`, which times every
+stage under its name.
+
+1. ``collect_inputs`` — :func:`takeup.pipeline.run.inputs.collect_inputs`, every SQL
+   aggregation (the only read; done by the runner, which owns the connection);
+2. ``site_estimates`` — :func:`compute_site_rows`, per-site estimates from moments
+   (vectorised over sites);
+3. ``adjusted`` — :func:`compute_adjusted_row`, optional covariate-adjusted IV, one
+   site at a time (the per-site stage a flow maps across workers);
+4. ``pooling`` — :func:`compute_pooled`, pooled estimates, subgroup tests, influence;
+5. ``trends`` — :func:`takeup.pipeline.run.trend_rows.compute_trends`;
+6. ``alerts`` — :func:`takeup.pipeline.run.alert_rules.compute_alerts`;
+7. ``write`` — :func:`takeup.pipeline.run.writer.write_results`, every result table of
+   the run in one transaction (done by the runner).
+"""
+
+from __future__ import annotations
+
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import date, datetime
+from pathlib import Path
+from typing import Any, Callable, Iterator, Protocol, Sequence
+
+import duckdb
+
+from takeup.pipeline.run.alert_rules import compute_alerts
+from takeup.pipeline.run.inputs import RunContext, RunInputs, collect_inputs, new_run_context
+from takeup.pipeline.run.pooled_rows import pool_outcome
+from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
+from takeup.pipeline.run.site_rows import adjusted_row, complier_profile_rows, estimate_sites
+from takeup.pipeline.run.trend_rows import compute_trends
+from takeup.pipeline.run.writer import RunResults, RunSummary, finish_run, start_run, summarise, write_results
+from takeup.pipeline.stats.estimators.adjusted import fit_covariate_adjusted
+from takeup.pipeline.warehouse import connect, stored_config
+from takeup.schemas.config import StudyConfig
+
+__all__ = ["Stage", "STAGES", "StageCaller", "InProcess", "compute_all", "timed", "run_monitoring",
+           "compute_site_rows", "compute_adjusted_row", "compute_pooled", "site_error_rows", "resolve_config"]
+
+
+# ----------------------------------------------------------------------------- stage functions
+def compute_site_rows(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], list[dict]]:
+    """``site_estimates`` (unadjusted) and ``complier_profile`` rows for every outcome."""
+    sites = list(inputs.sites)
+    rows: list[dict] = []
+    for outcome in inputs.outcomes:
+        table = moments_for_outcome(inputs.moments, outcome, sites)
+        clusters = (cluster_moments_for_outcome(inputs.clusters, outcome, sites)
+                    if inputs.clusters is not None else None)
+        rows.extend(estimate_sites(table, ctx.config, ctx.run_id, clusters=clusters))
+    profile = complier_profile_rows(inputs.covariate_cells, inputs.sites, list(ctx.config.covariates), ctx.run_id)
+    return rows, profile
+
+
+def compute_adjusted_row(frame, base_row: dict, ctx: RunContext) -> dict:
+    """The covariate-adjusted row of one site x outcome (does not vectorise: one IV2SLS fit)."""
+    cluster = "cluster_id" if ctx.config.randomisation_unit == "cluster" else None
+    fit = fit_covariate_adjusted(frame, outcome="y", treatment="d", instrument="z",
+                                 covariates=list(ctx.config.covariates), cluster=cluster)
+    return adjusted_row(base_row, fit, ctx.run_id)
+
+
+def site_error_rows(base_row: dict, message: str) -> dict:
+    """Row written when a site task fails: the site's row with ``status='error'``."""
+    row = dict(base_row)
+    row.update({"spec": "covariate_adjusted", "status": "error", "note": f"site task failed: {message}",
+                "included_in_pool": False, "pool_exclusion_reason": "site task failed"})
+    for k in ("complier_share", "complier_share_se", "itt", "itt_se", "cace", "cace_se", "cace_ci_low",
+              "cace_ci_high", "first_stage_f", "ar_set", "ar_ci_low", "ar_ci_high", "tf_ci_low", "tf_ci_high",
+              "tf_se", "se_type"):
+        row[k] = None
+    return row
+
+
+def compute_pooled(inputs: RunInputs, ctx: RunContext, site_rows: list[dict]
+                   ) -> tuple[list[dict], list[dict], list[dict]]:
+    """``pooled_estimates``, ``subgroup_tests`` and ``site_influence`` rows for every outcome."""
+    groups = {s.site_id: s.group for s in ctx.config.sites}
+    pooled, subgroup, influence = [], [], []
+    sites = list(inputs.sites)
+    for outcome in inputs.outcomes:
+        rows = [r for r in site_rows if r["outcome"] == outcome and r["spec"] == "unadjusted"]
+        table = moments_for_outcome(inputs.moments, outcome, sites)
+        p, s, i = pool_outcome(ctx.run_id, outcome, rows, table.moments, sites, ctx.config, groups)
+        pooled += p
+        subgroup += s
+        influence += i
+    return pooled, subgroup, influence
+
+
+# ----------------------------------------------------------------------------- the stage list
+class StageCaller(Protocol):
+    """How a stage's function is executed: directly (:class:`InProcess`) or as a Prefect task."""
+
+    def one(self, stage: "Stage", *args: Any) -> Any:
+        """Call the stage's function once and return its value."""
+
+    def each(self, stage: "Stage", arglists: Sequence[tuple]) -> list[tuple[Any, BaseException | None]]:
+        """Call it once per argument tuple; ``(value, None)`` or ``(None, error)`` per call, in order."""
+
+
+@dataclass(frozen=True)
+class Stage:
+    """One entry of :data:`STAGES`.
+
+    ``function`` is the plain computation (what a flow wraps as a task, named
+    ``task_name``); ``apply`` feeds it from the run's inputs and earlier rows and
+    stores what it returns in the :class:`RunResults`.
+    """
+
+    name: str
+    task_name: str
+    function: Callable[..., Any]
+    apply: Callable[["Stage", StageCaller, RunInputs, RunContext, RunResults], None]
+
+
+def _apply_site_rows(stage, call, inputs, ctx, res):
+    res.site_estimates, res.complier_profile = call.one(stage, inputs, ctx)
+
+
+def _apply_adjusted(stage, call, inputs, ctx, res):
+    base = {(r["site_id"], r["outcome"]): r for r in res.site_estimates}
+    keys = list(inputs.participant_frames)
+    outcomes = call.each(stage, [(inputs.participant_frames[k], base[k], ctx) for k in keys])
+    for key, (row, exc) in zip(keys, outcomes):
+        if exc is None:
+            res.site_estimates.append(row)
+        else:  # a failing site task marks that site; the run goes on and ends 'partial'
+            res.site_estimates.append(site_error_rows(base[key], f"{type(exc).__name__}: {exc}"))
+            res.errors.append(f"{key[0]}/{key[1]}: {exc}")
+
+
+def _apply_pooled(stage, call, inputs, ctx, res):
+    res.pooled_estimates, res.subgroup_tests, res.site_influence = call.one(stage, inputs, ctx, res.site_estimates)
+
+
+def _apply_trends(stage, call, inputs, ctx, res):
+    res.uptake_trends, res.drift = call.one(stage, inputs, ctx)
+
+
+def _apply_alerts(stage, call, inputs, ctx, res):
+    res.alerts = call.one(stage, inputs, ctx, res.site_estimates, res.pooled_estimates, res.site_influence,
+                          res.drift)
+
+
+#: The run's computing stages, in order (collect and write, which touch the warehouse, are the runner's).
+STAGES: tuple[Stage, ...] = (
+    Stage("site_estimates", "site-estimates", compute_site_rows, _apply_site_rows),
+    Stage("adjusted", "covariate-adjusted-site", compute_adjusted_row, _apply_adjusted),
+    Stage("pooling", "pooling", compute_pooled, _apply_pooled),
+    Stage("trends", "trends", compute_trends, _apply_trends),
+    Stage("alerts", "alerts", compute_alerts, _apply_alerts),
+)
+
+
+class InProcess:
+    """Run every stage function directly in this process."""
+
+    def one(self, stage: Stage, *args: Any) -> Any:
+        return stage.function(*args)
+
+    def each(self, stage: Stage, arglists: Sequence[tuple]) -> list[tuple[Any, BaseException | None]]:
+        out: list[tuple[Any, BaseException | None]] = []
+        for args in arglists:
+            try:
+                out.append((stage.function(*args), None))
+            except Exception as exc:  # a failing site task must not stop the run
+                out.append((None, exc))
+        return out
+
+
+@contextmanager
+def timed(timings: dict, name: str) -> Iterator[None]:
+    """Record the wall time of the block in ``timings[name]`` (seconds, 4 decimals)."""
+    t = time.perf_counter()
+    try:
+        yield
+    finally:
+        timings[name] = round(time.perf_counter() - t, 4)
+
+
+def compute_all(inputs: RunInputs, ctx: RunContext, timings: dict, call: StageCaller | None = None,
+                stages: Sequence[Stage] | None = None) -> RunResults:
+    """Every computing stage of :data:`STAGES`, in order, each timed under its name."""
+    call = call or InProcess()
+    res = RunResults()
+    for stage in (STAGES if stages is None else stages):
+        if stage.name == "adjusted" and not inputs.participant_frames:
+            continue
+        with timed(timings, stage.name):
+            stage.apply(stage, call, inputs, ctx, res)
+    return res
+
+
+# ----------------------------------------------------------------------------- in-process runner
+def resolve_config(con: duckdb.DuckDBPyConnection, config: StudyConfig | None) -> StudyConfig:
+    return config or stored_config(con) or StudyConfig()
+
+
+def run_monitoring(warehouse: Path | str, as_of: date | None = None, config: StudyConfig | None = None,
+                   data_cutoff: datetime | None = None) -> RunSummary:
+    """Compute one run in process (no orchestration API) and write it."""
+    con = connect(warehouse)
+    try:
+        ctx = new_run_context(resolve_config(con, config), as_of=as_of, data_cutoff=data_cutoff)
+        timings: dict = {}
+        start_run(con, ctx)
+        inputs = None
+        try:
+            with timed(timings, "collect_inputs"):
+                inputs = collect_inputs(con, ctx)
+            results = compute_all(inputs, ctx, timings)
+            with timed(timings, "write"):
+                counts = write_results(con, ctx, results)
+        except BaseException as exc:
+            finish_run(con, ctx, "failed", inputs, timings, f"{type(exc).__name__}: {exc}")
+            raise
+        status = "partial" if results.errors else "ok"
+        message = "; ".join(results.errors) if results.errors else None
+        finish_run(con, ctx, status, inputs, timings, message)
+        return summarise(ctx, status, inputs, counts, results.alerts, timings, message)
+    finally:
+        con.close()

@@ -1,0 +1,470 @@
+"""Uptake trends per site x arm x period, and drift detection by Bernoulli CUSUM.
+
+:func:`compute_trends` turns the run's period counts into rows of
+``uptake_trends`` on two time bases and runs one drift chart per site x arm.
+
+Trend rows
+----------
+* ``cohort`` basis: participants grouped by the period in which they were
+  assigned; ``n_taken_up`` counts those who took up by the cutoff.
+* ``calendar`` basis: the status at the end of each period among everyone
+  assigned by then (the counts are already stocks, so
+  ``cumulative_uptake_share`` equals ``uptake_share`` there).
+
+``uptake_share = n_taken_up / n_observed``, where ``n_observed`` counts the
+participants with at least one uptake report: a participant without a report
+yet has not "not taken up", so they are left out of the denominator.  When no
+participant of the row has a report yet the share is null.  On the cohort
+basis ``cumulative_uptake_share`` pools all cohorts up to the row's period
+(sum of ``n_taken_up`` over sum of ``n_observed``).
+
+Rows are written for both arms of every site x period that has any row in
+the input (an arm without participants in that period gets ``n_assigned = 0``
+and a null share), so each site's series is on a regular grid.
+
+``first_stage = uptake_T - uptake_C`` in the period, with the unpooled
+binomial standard error ``sqrt(pT(1-pT)/nT + pC(1-pC)/nC)`` (``n`` = uptake
+reports); it is the same on both arm rows and null when either arm has no
+uptake report in the period.
+
+Drift charts
+------------
+On the cohort basis each site x arm gets a one-sided Bernoulli CUSUM
+([1]_, :mod:`takeup.pipeline.stats.drift.chart`):
+
+* control arm, **upward** chart (controls getting the programme:
+  contamination), out-of-control odds ``alerts.drift_odds_ratio`` times the
+  in-control odds;
+* treatment arm, **downward** chart (offers not delivered), odds divided by
+  ``alerts.drift_odds_ratio``.
+
+The in-control rate ``p0`` is the pooled uptake of the first
+``alerts.drift_baseline_periods`` periods of that site x arm that have uptake
+reports (:func:`~takeup.pipeline.stats.drift.baseline.baseline_rate`, with its
+continuity floor/ceiling ``[0.5/N, 1 - 0.5/N]``).  The chart runs over the
+later periods only, with participants = uptake reports, and its threshold
+``h`` is chosen by :func:`~takeup.pipeline.stats.drift.design.design_cusum` for an
+in-control average run length of ``alerts.drift_arl0`` participants.  The
+statistic after each monitored period is written into ``cusum`` (and ``h``
+into ``cusum_limit``) of the cohort rows; rows before the first monitored
+period have both null.
+
+References
+----------
+.. [1] Reynolds, M. R. Jr. and Stoumbos, Z. G. (1999). A CUSUM chart for
+   monitoring a proportion when inspecting continuously. *Journal of
+   Quality Technology* 31(1), 87-108.
+.. [2] Page, E. S. (1954). Continuous inspection schemes. *Biometrika*
+   41(1/2), 100-115.
+"""
+
+from __future__ import annotations
+
+import functools
+from dataclasses import dataclass
+from datetime import date
+
+import numpy as np
+import pandas as pd
+
+from takeup.pipeline.stats.drift.baseline import baseline_rate
+from takeup.pipeline.stats.drift.chart import bernoulli_cusum, shifted_rate
+from takeup.pipeline.stats.drift.design import design_cusum
+from takeup.pipeline.stats.drift.shrinkage import shrink_rates
+from takeup.pipeline.run.inputs import RunContext, RunInputs
+from takeup.pipeline.run.site_rows import clean
+
+__all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "ARMS_BY_Z", "DESIGN_REL_TOL"]
+
+#: arm label by assignment indicator z (0 control, 1 treatment)
+ARMS_BY_Z: tuple[str, str] = ("control", "treatment")
+
+#: Discretisation tolerance passed to :func:`design_cusum`.  The module default
+#: (1e-7) costs about 1 s per chart; 1e-5 costs about 0.1 s and, for the
+#: default shift (odds ratio 3, ARL0 2000) at p0 in 0.02-0.12, moved h by less
+#: than 1e-3 and left the in-control ARL unchanged to 5 digits (checked when
+#: this module was written).  The chain error bound is ``k * rel_tol * max(u, d)``
+#: after ``k`` large steps (see the cusum module), far below any practical h.
+DESIGN_REL_TOL = 1e-4   # rational approximation of the score grid; designs stay at or above the target ARL0
+
+_COUNT_COLUMNS = ("n_assigned", "n_observed", "n_taken_up")
+
+
+@dataclass(frozen=True)
+class DriftResult:
+    """Drift charts of one run, one entry per site x arm (read-only arrays).
+
+    Attributes
+    ----------
+    site_id, arm : tuple of str
+        Series labels (``arm`` is ``control`` or ``treatment``).
+    direction : tuple of str
+        ``up`` (control: contamination) or ``down`` (treatment: non-delivery).
+    periods : tuple of date
+        Cohort periods of the study (columns of ``path``).
+    p0, p1, h : ndarray
+        In-control rate, out-of-control rate and decision limit (NaN when the
+        chart is undefined, see ``notes``).
+    signalled : ndarray of bool
+        Whether the statistic reached ``h`` in any monitored period.
+    first_signal_period : tuple of (date or None)
+        Period of the first signal.
+    change_period : tuple of (date or None)
+        Start of the "recent" window used in messages: for a signalled chart,
+        the period after the statistic was last at zero before the first
+        signal (Page's change-point estimate [2]_); otherwise the first
+        monitored period.
+    statistic : ndarray
+        Statistic after the latest period (NaN when the chart is undefined).
+    peak_statistic : ndarray
+        Largest statistic over the monitored periods.
+    recent_uptake, earlier_uptake : ndarray
+        Pooled uptake from ``change_period`` on, and before it.
+    n_recent_periods : ndarray of int
+        Periods with uptake reports from ``change_period`` on.
+    n_monitored_periods : ndarray of int
+        Periods the chart ran over (after the baseline).
+    path : ndarray, shape (series, periods)
+        Statistic after each period; NaN before the first monitored period.
+    notes : tuple of str
+        ``""`` or why the chart is undefined / not running yet.
+
+    References
+    ----------
+    .. [1] Reynolds, M. R. Jr. and Stoumbos, Z. G. (1999). A CUSUM chart for
+       monitoring a proportion when inspecting continuously. *Journal of
+       Quality Technology* 31(1), 87-108.
+    .. [2] Page, E. S. (1954). Continuous inspection schemes. *Biometrika*
+       41(1/2), 100-115.
+    """
+
+    site_id: tuple[str, ...]
+    arm: tuple[str, ...]
+    direction: tuple[str, ...]
+    periods: tuple[date, ...]
+    p0: np.ndarray
+    p1: np.ndarray
+    h: np.ndarray
+    signalled: np.ndarray
+    first_signal_period: tuple
+    change_period: tuple
+    statistic: np.ndarray
+    peak_statistic: np.ndarray
+    recent_uptake: np.ndarray
+    earlier_uptake: np.ndarray
+    n_recent_periods: np.ndarray
+    n_monitored_periods: np.ndarray
+    path: np.ndarray
+    notes: tuple[str, ...]
+
+    def index(self, site_id: str, arm: str) -> int | None:
+        """Position of the series ``(site_id, arm)``, or None when absent."""
+        for i, (s, a) in enumerate(zip(self.site_id, self.arm)):
+            if s == site_id and a == arm:
+                return i
+        return None
+
+
+def _readonly(a, dtype=float) -> np.ndarray:
+    arr = np.array(a, dtype=dtype, copy=True)
+    arr.setflags(write=False)
+    return arr
+
+
+def _as_dates(col: pd.Series) -> pd.Series:
+    """Period starts as ``datetime.date`` whatever DuckDB/pandas handed over."""
+    if len(col) == 0:
+        return col.astype(object)
+    return pd.to_datetime(col).dt.date
+
+
+def _normalise(frame: pd.DataFrame | None) -> pd.DataFrame:
+    """A copy with typed columns (never mutate the input)."""
+    cols = ["site_id", "z", "period_start", *_COUNT_COLUMNS]
+    if frame is None or len(frame) == 0:
+        return pd.DataFrame({c: pd.Series(dtype=object if c in ("site_id", "period_start") else "int64")
+                             for c in cols})
+    f = frame.loc[:, cols].copy()
+    f["site_id"] = f["site_id"].astype(str)
+    f["z"] = f["z"].astype(int)
+    f["period_start"] = _as_dates(f["period_start"])
+    for c in _COUNT_COLUMNS:
+        f[c] = pd.to_numeric(f[c], errors="coerce").fillna(0).astype("int64")
+    # one row per site x arm x period (sum duplicates defensively)
+    return f.groupby(["site_id", "z", "period_start"], as_index=False)[list(_COUNT_COLUMNS)].sum()
+
+
+def _share(x: np.ndarray, n: np.ndarray) -> np.ndarray:
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n > 0, x / np.where(n > 0, n, 1), np.nan)
+
+
+def _grid(frame: pd.DataFrame) -> pd.DataFrame:
+    """Both arms for every site x period present, zero-filled, sorted."""
+    keys = frame[["site_id", "period_start"]].drop_duplicates()
+    full = keys.merge(pd.DataFrame({"z": [0, 1]}), how="cross")
+    out = full.merge(frame, on=["site_id", "period_start", "z"], how="left")
+    for c in _COUNT_COLUMNS:
+        out[c] = out[c].fillna(0).astype("int64")
+    return out.sort_values(["site_id", "z", "period_start"], kind="stable").reset_index(drop=True)
+
+
+def trend_rows(frame: pd.DataFrame, basis: str, run_id: str,
+               cusum_values: np.ndarray | None = None, cusum_limits: np.ndarray | None = None
+               ) -> tuple[pd.DataFrame, list[dict]]:
+    """``uptake_trends`` rows of one basis (see the module docstring).
+
+    Parameters
+    ----------
+    frame : DataFrame
+        Counts with columns site_id, z, period_start, n_assigned, n_observed,
+        n_taken_up (not modified).
+    basis : {"cohort", "calendar"}
+    run_id : str
+    cusum_values, cusum_limits : ndarray, optional
+        One entry per row of the returned grid (NaN: null).
+
+    Returns
+    -------
+    grid : DataFrame
+        The zero-filled site x arm x period grid the rows are built from
+        (same order as the rows).
+    rows : list of dict
+        Rows with exactly the ``UptakeTrendRow`` columns.
+    """
+    g = _grid(_normalise(frame))
+    if g.empty:
+        return g, []
+    x = g["n_taken_up"].to_numpy(float)
+    n = g["n_observed"].to_numpy(float)
+    share = _share(x, n)
+    if basis == "cohort":
+        grp = g.groupby(["site_id", "z"], sort=False)
+        cum = _share(grp["n_taken_up"].cumsum().to_numpy(float), grp["n_observed"].cumsum().to_numpy(float))
+    else:
+        cum = share.copy()
+    # first stage per site x period: arms side by side
+    key = g["site_id"].astype(str) + "|" + g["period_start"].astype(str)
+    is_t = g["z"].to_numpy() == 1
+    t_share = pd.Series(np.where(is_t, share, np.nan)).groupby(key.to_numpy()).transform("max").to_numpy()
+    c_share = pd.Series(np.where(~is_t, share, np.nan)).groupby(key.to_numpy()).transform("max").to_numpy()
+    t_n = pd.Series(np.where(is_t, n, 0.0)).groupby(key.to_numpy()).transform("sum").to_numpy()
+    c_n = pd.Series(np.where(~is_t, n, 0.0)).groupby(key.to_numpy()).transform("sum").to_numpy()
+    both = np.isfinite(t_share) & np.isfinite(c_share)
+    fs = np.where(both, t_share - c_share, np.nan)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = (t_share * (1 - t_share) / np.where(t_n > 0, t_n, 1)
+               + c_share * (1 - c_share) / np.where(c_n > 0, c_n, 1))
+    fs_se = np.where(both, np.sqrt(np.maximum(var, 0.0)), np.nan)
+    cv = np.full(len(g), np.nan) if cusum_values is None else np.asarray(cusum_values, float)
+    cl = np.full(len(g), np.nan) if cusum_limits is None else np.asarray(cusum_limits, float)
+    rows = [
+        {"run_id": run_id, "site_id": s, "arm": ARMS_BY_Z[z], "basis": basis, "period_start": p,
+         "n_assigned": int(na), "n_taken_up": int(nt), "uptake_share": clean(sh),
+         "cumulative_uptake_share": clean(cu), "first_stage": clean(f), "first_stage_se": clean(fse),
+         "cusum": clean(c), "cusum_limit": clean(lim)}
+        for s, z, p, na, nt, sh, cu, f, fse, c, lim in zip(
+            g["site_id"], g["z"], g["period_start"], g["n_assigned"], g["n_taken_up"], share, cum, fs, fs_se,
+            cv, cl)
+    ]
+    return g, rows
+
+
+def _empty_drift() -> DriftResult:
+    e = _readonly([])
+    return DriftResult(site_id=(), arm=(), direction=(), periods=(), p0=e, p1=e, h=e,
+                       signalled=_readonly([], bool), first_signal_period=(), change_period=(), statistic=e,
+                       peak_statistic=e, recent_uptake=e, earlier_uptake=e,
+                       n_recent_periods=_readonly([], np.int64), n_monitored_periods=_readonly([], np.int64),
+                       path=_readonly(np.zeros((0, 0))), notes=())
+
+
+#: in-control levels are rounded to this step on the logit scale (odds within +/-5%) before a
+#: chart is designed: the chart is then exactly designed for its rounded level, the rounding is
+#: far below the sampling error of a baseline estimate, and a run designs a few dozen charts at
+#: most whatever the number of sites (each design is cached per level within the process)
+LOGIT_STEP = 0.1
+
+
+def round_level(p):
+    """In-control level rounded to :data:`LOGIT_STEP` on the logit scale (NaN stays NaN)."""
+    p = np.asarray(p, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        logit = np.log(p) - np.log1p(-p)
+        return np.where(np.isfinite(logit), 1.0 / (1.0 + np.exp(-np.round(logit / LOGIT_STEP) * LOGIT_STEP)), np.nan)
+
+
+@functools.lru_cache(maxsize=4096)
+def _design_h(p0: float, odds_ratio: float, target_arl0: float) -> tuple[float, str]:
+    d = design_cusum(np.array([p0]), shift_odds_ratio=np.array([odds_ratio]), target_arl0=float(target_arl0),
+                     rel_tol=DESIGN_REL_TOL)
+    return float(np.asarray(d.h)[0]), d.notes[0]
+
+
+def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio: float,
+                 target_arl0: float, baseline: str = "shrunk") -> DriftResult:
+    """One-sided Bernoulli CUSUM per site x arm on cohort counts.
+
+    Parameters
+    ----------
+    cohort_counts : DataFrame
+        site_id, z, period_start, n_assigned, n_observed, n_taken_up (not
+        modified).  Participants of a period are its uptake reports
+        (``n_observed``), successes ``n_taken_up``.
+    baseline_periods : int
+        Leading periods (with uptake reports) of each series that set ``p0``.
+    odds_ratio : float
+        Shift (> 1) in the odds of uptake to detect: up for control, down
+        (``1/odds_ratio``) for treatment.
+    target_arl0 : float
+        In-control average run length in participants.
+
+    Returns
+    -------
+    DriftResult
+
+    Notes
+    -----
+    All series run in one :func:`bernoulli_cusum` call on a series x period
+    matrix in which baseline periods carry no participants (they add
+    nothing), and one :func:`design_cusum` call designs the distinct
+    ``(p0, odds ratio)`` pairs (the threshold search itself loops over charts
+    inside the cusum module).
+
+    References
+    ----------
+    .. [1] Reynolds, M. R. Jr. and Stoumbos, Z. G. (1999). A CUSUM chart for
+       monitoring a proportion when inspecting continuously. *Journal of
+       Quality Technology* 31(1), 87-108.
+    .. [2] Page, E. S. (1954). Continuous inspection schemes. *Biometrika*
+       41(1/2), 100-115.
+    """
+    f = _normalise(cohort_counts)
+    if f.empty:
+        return _empty_drift()
+    sites = sorted(f["site_id"].unique())
+    periods = sorted(f["period_start"].unique())
+    s_pos = {s: i for i, s in enumerate(sites)}
+    p_pos = {p: j for j, p in enumerate(periods)}
+    n_series, n_per = 2 * len(sites), len(periods)
+    si = f["site_id"].map(s_pos).to_numpy() * 2 + f["z"].to_numpy()
+    pj = f["period_start"].map(p_pos).to_numpy()
+    x = np.zeros((n_series, n_per))
+    n = np.zeros((n_series, n_per))
+    np.add.at(x, (si, pj), f["n_taken_up"].to_numpy(float))
+    np.add.at(n, (si, pj), f["n_observed"].to_numpy(float))
+
+    k = int(baseline_periods)
+    present = n > 0
+    rank = np.cumsum(present, axis=1)
+    in_base = present & (rank <= k)
+    monitored = present & (rank > k)
+    xb = np.where(in_base, x, 0.0)
+    nb = np.where(in_base, n, 0.0)
+    base = baseline_rate(xb, nb, n_per)
+    p0 = np.array(base.rate, dtype=float)
+    if baseline == "shrunk":
+        # empirical-Bayes shrinkage of each site's baseline toward the arm's study-wide baseline
+        shrunk = shrink_rates(xb.sum(axis=1), nb.sum(axis=1), np.arange(n_series) % 2)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            lo = 0.5 / nb.sum(axis=1)
+        keep = np.isfinite(shrunk.rate) & np.isfinite(p0)
+        p0 = np.where(keep, np.clip(shrunk.rate, lo, 1.0 - lo), p0)
+    ok = np.isfinite(p0)
+    p0 = np.where(ok, round_level(p0), np.nan)
+    is_up = (np.arange(n_series) % 2) == 0          # control rows: upward chart
+    ors = np.where(is_up, float(odds_ratio), 1.0 / float(odds_ratio))
+    p1 = shifted_rate(p0, ors)
+
+    h = np.full(n_series, np.nan)
+    design_notes = [""] * n_series
+    for pos in np.flatnonzero(ok):     # cached per distinct (p0, odds ratio): a few dozen designs at most
+        h[pos], design_notes[pos] = _design_h(round(float(p0[pos]), 6), float(ors[pos]), float(target_arl0))
+
+    chart = bernoulli_cusum(np.where(monitored, x, 0.0), np.where(monitored, n, 0.0), p0, p1, h)
+    stat = np.array(chart.statistic, dtype=float)
+    started = rank > k                                   # from the first monitored period on
+    started &= np.cumsum(monitored, axis=1) > 0
+    path = np.where(started, stat, np.nan)
+    n_monitored = monitored.sum(axis=1)
+    signalled = np.asarray(chart.signalled) & (n_monitored > 0)
+    first = np.asarray(chart.first_signal)
+
+    cols = np.arange(n_per)[None, :]
+    first_mon = np.where(n_monitored > 0, np.argmax(monitored, axis=1), n_per)
+    # change point: period after the last zero of the statistic before the first signal
+    zero_before = (np.nan_to_num(stat, nan=1.0) == 0.0) & (cols < first[:, None])
+    last_zero = np.where(zero_before, cols, -1).max(axis=1)
+    change = np.where(signalled, np.maximum(last_zero + 1, first_mon), first_mon)
+    recent_mask = present & (cols >= change[:, None])
+    earlier_mask = present & (cols < change[:, None])
+    recent = _share(np.where(recent_mask, x, 0).sum(1), np.where(recent_mask, n, 0).sum(1))
+    earlier = _share(np.where(earlier_mask, x, 0).sum(1), np.where(earlier_mask, n, 0).sum(1))
+    n_recent = recent_mask.sum(axis=1)
+    with np.errstate(invalid="ignore"):
+        peak = np.where(n_monitored > 0, np.nanmax(np.where(started, stat, -np.inf), axis=1), np.nan)
+    peak = np.where(np.isfinite(peak), peak, np.nan)
+    final = np.where(n_monitored > 0, np.asarray(chart.final_statistic), np.nan)
+
+    notes = []
+    for i in range(n_series):  # assemble one reason string per series (strings, not numbers)
+        parts = [p for p in (base.notes[i], design_notes[i], chart.notes[i]) if p]
+        if not parts and n_monitored[i] == 0:
+            parts.append(f"{int(rank[i, -1])} period(s) with uptake reports: the chart starts after the first "
+                         f"{k} (baseline) periods")
+        notes.append("; ".join(dict.fromkeys(parts)))
+    return DriftResult(
+        site_id=tuple(s for s in sites for _ in (0, 1)),
+        arm=tuple(ARMS_BY_Z[i % 2] for i in range(n_series)),
+        direction=tuple("up" if u else "down" for u in is_up),
+        periods=tuple(periods),
+        p0=_readonly(p0), p1=_readonly(p1), h=_readonly(h),
+        signalled=_readonly(signalled, bool),
+        first_signal_period=tuple(periods[j] if sg else None for j, sg in zip(first, signalled)),
+        change_period=tuple(periods[c] if c < n_per else None for c in change),
+        statistic=_readonly(final), peak_statistic=_readonly(peak),
+        recent_uptake=_readonly(recent), earlier_uptake=_readonly(earlier),
+        n_recent_periods=_readonly(n_recent, np.int64), n_monitored_periods=_readonly(n_monitored, np.int64),
+        path=_readonly(path), notes=tuple(notes),
+    )
+
+
+def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], DriftResult]:
+    """``uptake_trends`` rows (cohort and calendar bases) and the drift charts.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        Uses ``cohort_counts`` and ``calendar_counts`` (not modified).
+    ctx : RunContext
+        ``ctx.config.alerts`` supplies ``drift_baseline_periods``,
+        ``drift_odds_ratio`` and ``drift_arl0``.
+
+    Returns
+    -------
+    rows : list of dict
+        Rows with exactly the ``UptakeTrendRow`` columns, cohort basis first.
+    drift : DriftResult
+        One chart per site x arm of the cohort basis.
+
+    References
+    ----------
+    .. [1] Reynolds, M. R. Jr. and Stoumbos, Z. G. (1999). A CUSUM chart for
+       monitoring a proportion when inspecting continuously. *Journal of
+       Quality Technology* 31(1), 87-108.
+    """
+    a = ctx.config.alerts
+    drift = detect_drift(inputs.cohort_counts, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
+                         baseline=a.drift_baseline)
+    grid = _grid(_normalise(inputs.cohort_counts))
+    cv = cl = None
+    if len(grid) and len(drift.site_id):
+        s_pos = {s: i for i, s in enumerate(drift.site_id[::2])}
+        p_pos = {p: j for j, p in enumerate(drift.periods)}
+        si = grid["site_id"].map(s_pos).to_numpy() * 2 + grid["z"].to_numpy()
+        pj = grid["period_start"].map(p_pos).to_numpy()
+        cv = np.asarray(drift.path)[si, pj]
+        cl = np.where(np.isfinite(cv), np.asarray(drift.h)[si], np.nan)
+    _, cohort_rows = trend_rows(inputs.cohort_counts, "cohort", ctx.run_id, cv, cl)
+    _, calendar_rows = trend_rows(inputs.calendar_counts, "calendar", ctx.run_id)
+    return cohort_rows + calendar_rows, drift

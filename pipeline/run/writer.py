@@ -1,0 +1,129 @@
+"""Writing a run: the ``runs`` row, every result table in one transaction, the summary.
+
+The run's stages (:mod:`takeup.pipeline.run.stages`) compute rows; this module is
+the only one that writes them.  A ``runs`` row is written (status ``running``)
+before the work and updated at the end (``ok``, ``partial`` when some site
+tasks failed, or ``failed``).
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from datetime import date, datetime, timezone
+from importlib import metadata
+from typing import Any
+
+import duckdb
+import pyarrow as pa
+
+from takeup.pipeline.run.inputs import RunContext, RunInputs
+from takeup.pipeline.warehouse import store_config, transaction
+from takeup.schemas.ddl import columns_of
+from takeup.schemas.results import RESULT_TABLES
+
+__all__ = ["RunResults", "RunSummary", "write_results", "start_run", "finish_run", "code_version", "summarise"]
+
+
+def code_version() -> str:
+    try:
+        return metadata.version("takeup")
+    except metadata.PackageNotFoundError:  # pragma: no cover - running from a source tree
+        return "0+unknown"
+
+
+@dataclass
+class RunResults:
+    """The rows one run writes, per result table."""
+
+    site_estimates: list[dict] = field(default_factory=list)
+    complier_profile: list[dict] = field(default_factory=list)
+    pooled_estimates: list[dict] = field(default_factory=list)
+    subgroup_tests: list[dict] = field(default_factory=list)
+    site_influence: list[dict] = field(default_factory=list)
+    uptake_trends: list[dict] = field(default_factory=list)
+    alerts: list[dict] = field(default_factory=list)
+    errors: list[str] = field(default_factory=list)
+    drift: Any = None   # the trends stage's drift charts, read by the alerts stage (not written)
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    run_id: str
+    mode: str
+    as_of: date
+    status: str
+    n_sites: int
+    rows: dict
+    alerts_by_status: dict
+    timings: dict
+    message: str | None
+    flow_run_id: str | None = None
+
+
+def _arrow_table(table: str, rows: list[dict]) -> pa.Table:
+    model = RESULT_TABLES[table]
+    types = {"VARCHAR": pa.string(), "BIGINT": pa.int64(), "DOUBLE": pa.float64(), "BOOLEAN": pa.bool_(),
+             "DATE": pa.date32(), "TIMESTAMP": pa.timestamp("us")}
+    cols = columns_of(model)
+    schema = pa.schema([pa.field(c.name, types[c.sql_type]) for c in cols])
+    names = [c.name for c in cols]
+    for r in rows:
+        extra = set(r) - set(names)
+        if extra:
+            raise ValueError(f"{table}: unexpected column(s) {sorted(extra)}")
+    data = {n: [r.get(n) for r in rows] for n in names}
+    out = pa.Table.from_pydict(data, schema=schema)
+    import pyarrow.compute as pc
+    for c in cols:
+        if c.sql_type == "DOUBLE":
+            col = out.column(c.name)
+            if col.null_count < len(col) and not pc.all(pc.is_finite(col.drop_null())).as_py():
+                raise ValueError(f"{table}.{c.name}: NaN or infinite value reached the writer")
+    return out
+
+
+def write_results(con: duckdb.DuckDBPyConnection, ctx: RunContext, results: RunResults) -> dict:
+    """Append every result table of the run in one transaction; returns row counts."""
+    counts = {}
+    with transaction(con):
+        for table in ("site_estimates", "complier_profile", "pooled_estimates", "subgroup_tests",
+                      "site_influence", "uptake_trends", "alerts"):
+            rows = getattr(results, table)
+            counts[table] = len(rows)
+            if not rows:
+                continue
+            arrow = _arrow_table(table, rows)
+            con.register("_result_rows", arrow)
+            try:
+                con.execute(f'INSERT INTO "{table}" SELECT * FROM _result_rows')
+            finally:
+                con.unregister("_result_rows")
+    return counts
+
+
+def start_run(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> None:
+    store_config(con, ctx.config)
+    con.execute("INSERT INTO runs VALUES ($run, $flow, $mode, $as_of, $start, NULL, 'running', $ver, $cfg, '', 0, 0, "
+                "NULL, NULL)", {"run": ctx.run_id, "flow": ctx.flow_run_id, "mode": ctx.mode, "as_of": ctx.as_of,
+                                "start": ctx.started_at, "ver": code_version(), "cfg": ctx.config_hash})
+
+
+def finish_run(con: duckdb.DuckDBPyConnection, ctx: RunContext, status: str, inputs: RunInputs | None,
+               timings: dict, message: str | None) -> None:
+    con.execute("UPDATE runs SET finished_at = $end, status = $status, input_fingerprint = $fp, n_batches = $nb, "
+                "n_sites = $ns, timings_json = $t, message = $m WHERE run_id = $run",
+                {"end": datetime.now(timezone.utc).replace(tzinfo=None), "status": status,
+                 "fp": inputs.input_fingerprint if inputs else "", "nb": inputs.n_batches if inputs else 0,
+                 "ns": len(inputs.sites) if inputs else 0, "t": json.dumps(timings), "m": message,
+                 "run": ctx.run_id})
+
+
+def summarise(ctx: RunContext, status: str, inputs: RunInputs | None, counts: dict, alerts: list[dict],
+              timings: dict, message: str | None) -> RunSummary:
+    by_status: dict[str, int] = {}
+    for a in alerts:
+        by_status[a["status"]] = by_status.get(a["status"], 0) + 1
+    return RunSummary(run_id=ctx.run_id, mode=ctx.mode, as_of=ctx.as_of, status=status,
+                      n_sites=len(inputs.sites) if inputs else 0, rows=counts, alerts_by_status=by_status,
+                      timings=timings, message=message, flow_run_id=ctx.flow_run_id)
