@@ -96,7 +96,7 @@ def anderson_rubin_statistic(beta0, itt, fs, var_itt, var_fs, cov) -> np.ndarray
     return _ro(out)
 
 
-def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95) -> ARSet:
+def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95, critical=None) -> ARSet:
     r"""Closed-form Anderson-Rubin confidence set for the CACE, per site.
 
     Parameters
@@ -111,6 +111,11 @@ def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95) -> AR
     level : float
         Confidence level; the critical value is the chi-square(1) quantile
         :math:`q`.
+    critical : array_like, optional
+        Critical value(s) :math:`q` to use instead, one per site or one for all
+        (for example the squared multiplier of an anytime-valid confidence
+        sequence, :mod:`takeup.pipeline.stats.sequential`); ``level`` is then
+        only recorded.
 
     Returns
     -------
@@ -157,14 +162,17 @@ def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95) -> AR
     """
     if not (0.0 < level < 1.0):
         raise ValueError(f"level must be strictly between 0 and 1, got {level!r}")
-    g, p, vg, vp, cv = _broadcast_inputs(itt, fs, var_itt, var_fs, cov)
+    if critical is None:
+        g, p, vg, vp, cv = _broadcast_inputs(itt, fs, var_itt, var_fs, cov)
+        q = stats.chi2.ppf(level, 1)
+    else:
+        g, p, vg, vp, cv, q = _broadcast_inputs(itt, fs, var_itt, var_fs, cov, critical)
     n = g.shape[0]
-    q = stats.chi2.ppf(level, 1)
     nan = np.nan
     eps = np.finfo(float).eps
     with np.errstate(all="ignore"):
         bad = ~(np.isfinite(g) & np.isfinite(p) & np.isfinite(vg) & np.isfinite(vp)
-                & np.isfinite(cv)) | (vg < 0) | (vp < 0)
+                & np.isfinite(cv) & np.isfinite(q) & (q > 0)) | (vg < 0) | (vp < 0)
         a = p**2 - q * vp
         b = -2.0 * (g * p - q * cv)
         c = g**2 - q * vg
