@@ -38,8 +38,18 @@ def all_table_models() -> dict:
 
 
 def _create_tables(con: duckdb.DuckDBPyConnection) -> None:
+    """Create missing tables, and add the nullable columns a newer version appended to a model."""
+    from takeup.schemas.ddl import columns_of
+    existing = {(t, c) for t, c in con.execute(
+        "SELECT table_name, column_name FROM information_schema.columns WHERE table_schema = 'main'").fetchall()}
+    tables = {t for t, _ in existing}
     for table, model in all_table_models().items():
-        con.execute(create_table_sql(table, model))
+        if table not in tables:
+            con.execute(create_table_sql(table, model))
+            continue
+        for col in columns_of(model):
+            if (table, col.name) not in existing and col.nullable:
+                con.execute(f'ALTER TABLE "{table}" ADD COLUMN "{col.name}" {col.sql_type}')
     from takeup.schemas.results import create_views_sql
     for sql in create_views_sql():
         con.execute(sql)

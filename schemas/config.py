@@ -132,6 +132,29 @@ class ExecutionSettings(_Cfg):
     dask_address: Optional[str] = Field(default=None, description="tcp://HOST:PORT of an existing Dask scheduler.")
 
 
+class SequentialSettings(_Cfg):
+    """Anytime-valid intervals across weekly looks (Waudby-Smith et al. 2024; Howard et al. 2021)."""
+
+    alpha: float = Field(default=0.05, gt=0, lt=1,
+                         description="Level of the confidence sequences: they cover at every look at once with "
+                                     "probability at least 1 - alpha.")
+    horizon_participants: float = Field(default=1000.0, gt=0,
+                                        description="Planned participants per site (clusters under cluster "
+                                                    "randomisation) at which a site's sequence is tightest; the "
+                                                    "pooled sequence uses the sum over the pooled sites. Valid at "
+                                                    "every look whatever its value.")
+
+
+class PlanningSettings(_Cfg):
+    """Minimum detectable effects and when a target precision is reached (Bloom 1995)."""
+
+    power: float = Field(default=0.8, gt=0, lt=1, description="Power of the minimum detectable effect.")
+    accrual_weeks: int = Field(default=4, ge=1, description="Recent weeks whose assignments set the accrual rate.")
+    target_mde: Optional[float] = Field(default=None, gt=0,
+                                        description="Target minimum detectable CACE in outcome units (primary "
+                                                    "outcome); no forecast date without it.")
+
+
 class StudyConfig(_Cfg):
     """The whole study configuration."""
 
@@ -149,6 +172,8 @@ class StudyConfig(_Cfg):
     trends: TrendSettings = TrendSettings()
     schedule: ScheduleSettings = ScheduleSettings()
     execution: ExecutionSettings = ExecutionSettings()
+    sequential: SequentialSettings = SequentialSettings()
+    planning: PlanningSettings = PlanningSettings()
 
     _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
 

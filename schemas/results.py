@@ -16,7 +16,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 __all__ = [
     "RunRow", "SiteEstimateRow", "ComplierProfileRow", "PooledEstimateRow", "SubgroupTestRow",
-    "SiteInfluenceRow", "UptakeTrendRow", "AlertRow", "RESULT_TABLES", "LATEST_VIEWS", "create_views_sql",
+    "SiteInfluenceRow", "UptakeTrendRow", "AlertRow", "PrecisionForecastRow", "RESULT_TABLES", "LATEST_VIEWS", "create_views_sql",
 ]
 
 F = Optional[float]
@@ -85,6 +85,16 @@ class SiteEstimateRow(_Result):
     pool_exclusion_reason: Optional[str] = Field(default=None, description="Why not, when it does not.")
     status: str = Field(description="ok, or a code saying why some values are null (see README).")
     note: Optional[str] = Field(default=None, description="Plain-language explanation of the status.")
+    look: Optional[int] = Field(default=None, description="Runs of this site x outcome x spec so far, this one included.")
+    information: F = Field(default=None, description="Intrinsic time of the sequences: participants in the analysis (clusters under cluster randomisation).")
+    cs_itt_low: F = Field(default=None, description="Anytime-valid confidence sequence for the ITT (running intersection over looks), lower end.")
+    cs_itt_high: F = Field(default=None, description="Its upper end.")
+    cs_complier_share_low: F = Field(default=None, description="Anytime-valid confidence sequence for the complier share, lower end.")
+    cs_complier_share_high: F = Field(default=None, description="Its upper end.")
+    cs_cace_set: Optional[str] = Field(default=None, description="Anytime-valid Anderson-Rubin-type set for the CACE: interval, two_rays, real_line or empty.")
+    cs_cace_low: F = Field(default=None, description="Its bound (interval: lower end; two_rays: end of the lower ray).")
+    cs_cace_high: F = Field(default=None, description="Its bound (interval: upper end; two_rays: start of the upper ray).")
+    cs_alpha: F = Field(default=None, description="Level of the sequences ([sequential] alpha).")
 
 
 class ComplierProfileRow(_Result):
@@ -126,6 +136,11 @@ class PooledEstimateRow(_Result):
     h2: F = Field(default=None, description="H^2.")
     n_sites: int = Field(description="Sites pooled.")
     note: Optional[str] = Field(default=None, description="Caveats, sites left out.")
+    look: Optional[int] = Field(default=None, description="fixed rows of all sites: runs of this outcome x quantity so far, this one included.")
+    information: F = Field(default=None, description="fixed rows of all sites: participants (clusters) in the pooled sites.")
+    cs_low: F = Field(default=None, description="fixed rows of all sites: anytime-valid confidence sequence (running intersection), lower end; for cace it rests on the delta-method SE of sites with F >= the pooling floor.")
+    cs_high: F = Field(default=None, description="Its upper end.")
+    cs_alpha: F = Field(default=None, description="Level of the sequence.")
 
 
 class SubgroupTestRow(_Result):
@@ -197,6 +212,24 @@ class AlertRow(_Result):
     message: str = Field(description="Plain sentence with the evidence.")
 
 
+class PrecisionForecastRow(_Result):
+    """Table `precision_forecasts`: how precise the primary outcome's estimates are, and when a target is reached."""
+
+    run_id: str = Field(description="Run.")
+    scope: Literal["site", "pooled"] = Field(description="`site`, or `pooled` (fixed-effect pool of all sites).")
+    site_id: Optional[str] = Field(default=None, description="Site (null when pooled).")
+    outcome: str = Field(description="Primary outcome.")
+    n: int = Field(description="Participants in the analysis sample now.")
+    mde_itt: F = Field(default=None, description="Minimum detectable ITT: (z_(1-a/2) + z_power) x SE (Bloom 1995).")
+    mde_cace: F = Field(default=None, description="Minimum detectable CACE = mde_itt / complier share (null when the share's interval includes 0).")
+    complier_share: F = Field(default=None, description="Complier share used.")
+    accrual_per_week: F = Field(default=None, description="Participants assigned per week over the last [planning] accrual_weeks.")
+    target_mde: F = Field(default=None, description="[planning] target_mde.")
+    weeks_to_target: F = Field(default=None, description="Weeks until mde_cace reaches the target at the current accrual (0: reached; null: never or undefined).")
+    forecast_date: Optional[date] = Field(default=None, description="as_of + weeks_to_target (null when never or undefined).")
+    note: Optional[str] = Field(default=None, description="Why a value is null, assumptions.")
+
+
 RESULT_TABLES: dict[str, type[BaseModel]] = {
     "runs": RunRow,
     "site_estimates": SiteEstimateRow,
@@ -206,6 +239,7 @@ RESULT_TABLES: dict[str, type[BaseModel]] = {
     "site_influence": SiteInfluenceRow,
     "uptake_trends": UptakeTrendRow,
     "alerts": AlertRow,
+    "precision_forecasts": PrecisionForecastRow,
 }
 
 #: view name -> table it shows for the latest finished run
@@ -215,6 +249,7 @@ LATEST_VIEWS: dict[str, str] = {
     "latest_alerts": "alerts",
     "latest_uptake_trends": "uptake_trends",
     "latest_site_influence": "site_influence",
+    "latest_precision_forecasts": "precision_forecasts",
 }
 
 

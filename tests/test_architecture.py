@@ -113,7 +113,8 @@ def test_stage_list_is_defined_once():
     for stage in STAGES:
         assert stage.function.__name__ not in flow_src, f"flows/monitor.py calls {stage.function.__name__} itself"
     assert "compute_all(" in flow_src and "STAGES" in flow_src
-    assert [s.name for s in STAGES] == ["site_estimates", "adjusted", "pooling", "trends", "alerts"]
+    assert [s.name for s in STAGES] == ["site_estimates", "adjusted", "pooling", "sequential", "precision",
+                                       "trends", "alerts"]
 
 
 def test_guide_map_matches_the_tree():

@@ -165,6 +165,14 @@ def build_warehouse(tmp_path: Path, monkeypatch, site_ids=SITES, with_alerts: bo
     _insert(con, "complier_profile", [dict(run_id=RUN, site_id=s, covariate="age", n=v[0] + v[1], mean_all=38.0,
                                            mean_compliers=36.5, mean_always_takers=41.0, mean_never_takers=39.2)
                                       for s, v in zip(site_ids, _SITE_VALUES)])
+    _insert(con, "precision_forecasts",
+            [dict(run_id=RUN, scope="site", site_id=s, outcome="score", n=v[0] + v[1], mde_itt=1.4 + 0.1 * i,
+                  mde_cace=2.8 + 0.2 * i, complier_share=0.5, accrual_per_week=12.0, target_mde=2.0,
+                  weeks_to_target=6.0 + i, forecast_date=date(2026, 9, 7) + timedelta(days=7 * i))
+             for i, (s, v) in enumerate(zip(site_ids, _SITE_VALUES))]
+            + [dict(run_id=RUN, scope="pooled", site_id=None, outcome="score", n=1200, mde_itt=0.6, mde_cace=1.2,
+                    complier_share=0.5, accrual_per_week=70.0, target_mde=2.0, weeks_to_target=0.0,
+                    forecast_date=date(2026, 7, 27))])
     if with_alerts:
         s = site_ids
         alerts = [

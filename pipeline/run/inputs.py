@@ -66,6 +66,8 @@ class RunInputs:
     n_batches: int
     input_fingerprint: str
     participant_frames: dict = field(default_factory=dict)   # (site, outcome) -> frame; adjusted path only
+    previous_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)         # previous run's site sequences
+    previous_pooled_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)  # and its pooled ones
 
 
 def input_fingerprint(con: duckdb.DuckDBPyConnection, data_cutoff: datetime) -> tuple[str, int]:
@@ -157,6 +159,22 @@ def _previous_alerts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[s
     return prev[0], con.execute("SELECT * FROM alerts WHERE run_id = $r", {"r": prev[0]}).df()
 
 
+_SITE_SEQUENCE_COLUMNS = ("site_id", "outcome", "spec", "look", "cs_itt_low", "cs_itt_high", "cs_complier_share_low",
+                          "cs_complier_share_high", "cs_cace_set", "cs_cace_low", "cs_cace_high")
+_POOLED_SEQUENCE_COLUMNS = ("outcome", "quantity", "look", "cs_low", "cs_high")
+
+
+def _previous_sequences(con: duckdb.DuckDBPyConnection, prev_id: str | None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The previous finished run's sequence state (for the running intersection and the look count)."""
+    site_cols = ", ".join(f'"{c}"' for c in _SITE_SEQUENCE_COLUMNS)
+    pooled_cols = ", ".join(f'"{c}"' for c in _POOLED_SEQUENCE_COLUMNS)
+    site = con.execute(f"SELECT {site_cols} FROM site_estimates WHERE run_id = $r AND look IS NOT NULL",
+                       {"r": prev_id or ""}).df()
+    pooled = con.execute(f"SELECT {pooled_cols} FROM pooled_estimates WHERE run_id = $r AND look IS NOT NULL "
+                         "AND method = 'fixed' AND group_field IS NULL", {"r": prev_id or ""}).df()
+    return site, pooled
+
+
 def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs:
     """Run every SQL aggregation of the run and return the small frames."""
     config = ctx.config
@@ -172,6 +190,7 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
         cohort, calendar = _trend_counts(con, ctx)
         activity = _site_activity(con, ctx)
         prev_id, prev = _previous_alerts(con, ctx)
+        prev_site_seq, prev_pooled_seq = _previous_sequences(con, prev_id)
         frames = {}
         if config.estimation.adjust_covariates and config.covariates:
             for site in sites:
@@ -184,5 +203,6 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
     return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,
                      covariate_cells=cells, cohort_counts=cohort, calendar_counts=calendar,
                      site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,
-                     n_batches=n_batches, input_fingerprint=fingerprint, participant_frames=frames)
+                     n_batches=n_batches, input_fingerprint=fingerprint, participant_frames=frames,
+                     previous_sequences=prev_site_seq, previous_pooled_sequences=prev_pooled_seq)
 

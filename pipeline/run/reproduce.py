@@ -27,7 +27,7 @@ from takeup.schemas.config import parse_config
 __all__ = ["Reproduction", "ReproduceError", "reproduce_run"]
 
 _TABLES = ("site_estimates", "complier_profile", "pooled_estimates", "subgroup_tests", "site_influence",
-           "uptake_trends", "alerts")
+           "uptake_trends", "alerts", "precision_forecasts")
 
 
 
@@ -95,9 +95,10 @@ def reproduce_run(warehouse: Path | str, run_id: str, tolerance: float = 1e-9) -
         for table in _TABLES:
             stored = con.execute(f'SELECT * FROM "{table}" WHERE run_id = $r', {"r": run_id}).df()
             fresh = pd.DataFrame(getattr(results, table), columns=list(stored.columns))
-            if table == "uptake_trends" or "period_start" in stored.columns:
-                fresh["period_start"] = pd.to_datetime(fresh["period_start"])
-                stored["period_start"] = pd.to_datetime(stored["period_start"])
+            for col in ("period_start", "forecast_date"):
+                if col in stored.columns:
+                    fresh[col] = pd.to_datetime(fresh[col])
+                    stored[col] = pd.to_datetime(stored[col])
             worst, problem = _compare(stored, fresh)
             diffs[table] = worst
             if problem:

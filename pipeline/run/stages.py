@@ -13,9 +13,13 @@ stage under its name.
 3. ``adjusted`` — :func:`compute_adjusted_row`, optional covariate-adjusted IV, one
    site at a time (the per-site stage a flow maps across workers);
 4. ``pooling`` — :func:`compute_pooled`, pooled estimates, subgroup tests, influence;
-5. ``trends`` — :func:`takeup.pipeline.run.trend_rows.compute_trends`;
-6. ``alerts`` — :func:`takeup.pipeline.run.alert_rules.compute_alerts`;
-7. ``write`` — :func:`takeup.pipeline.run.writer.write_results`, every result table of
+5. ``sequential`` — :func:`takeup.pipeline.run.sequence_rows.add_sequences`, the anytime-valid
+   columns of site and pooled rows (running intersection with the previous run);
+6. ``precision`` — :func:`takeup.pipeline.run.sequence_rows.precision_rows`, minimum detectable
+   effects and forecasts;
+7. ``trends`` — :func:`takeup.pipeline.run.trend_rows.compute_trends`;
+8. ``alerts`` — :func:`takeup.pipeline.run.alert_rules.compute_alerts`;
+9. ``write`` — :func:`takeup.pipeline.run.writer.write_results`, every result table of
    the run in one transaction (done by the runner).
 """
 
@@ -33,6 +37,7 @@ import duckdb
 from takeup.pipeline.run.alert_rules import compute_alerts
 from takeup.pipeline.run.inputs import RunContext, RunInputs, collect_inputs, new_run_context
 from takeup.pipeline.run.pooled_rows import pool_outcome
+from takeup.pipeline.run.sequence_rows import add_sequences, precision_rows
 from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
 from takeup.pipeline.run.site_rows import adjusted_row, complier_profile_rows, estimate_sites
 from takeup.pipeline.run.trend_rows import compute_trends
@@ -141,6 +146,14 @@ def _apply_pooled(stage, call, inputs, ctx, res):
     res.pooled_estimates, res.subgroup_tests, res.site_influence = call.one(stage, inputs, ctx, res.site_estimates)
 
 
+def _apply_sequences(stage, call, inputs, ctx, res):
+    res.site_estimates, res.pooled_estimates = call.one(stage, inputs, ctx, res.site_estimates, res.pooled_estimates)
+
+
+def _apply_precision(stage, call, inputs, ctx, res):
+    res.precision_forecasts = call.one(stage, inputs, ctx, res.site_estimates, res.pooled_estimates)
+
+
 def _apply_trends(stage, call, inputs, ctx, res):
     res.uptake_trends, res.drift = call.one(stage, inputs, ctx)
 
@@ -155,6 +168,8 @@ STAGES: tuple[Stage, ...] = (
     Stage("site_estimates", "site-estimates", compute_site_rows, _apply_site_rows),
     Stage("adjusted", "covariate-adjusted-site", compute_adjusted_row, _apply_adjusted),
     Stage("pooling", "pooling", compute_pooled, _apply_pooled),
+    Stage("sequential", "anytime-valid-sequences", add_sequences, _apply_sequences),
+    Stage("precision", "precision-forecasts", precision_rows, _apply_precision),
     Stage("trends", "trends", compute_trends, _apply_trends),
     Stage("alerts", "alerts", compute_alerts, _apply_alerts),
 )

@@ -43,6 +43,7 @@ class RunResults:
     site_influence: list[dict] = field(default_factory=list)
     uptake_trends: list[dict] = field(default_factory=list)
     alerts: list[dict] = field(default_factory=list)
+    precision_forecasts: list[dict] = field(default_factory=list)
     errors: list[str] = field(default_factory=list)
     drift: Any = None   # the trends stage's drift charts, read by the alerts stage (not written)
 
@@ -88,7 +89,7 @@ def write_results(con: duckdb.DuckDBPyConnection, ctx: RunContext, results: RunR
     counts = {}
     with transaction(con):
         for table in ("site_estimates", "complier_profile", "pooled_estimates", "subgroup_tests",
-                      "site_influence", "uptake_trends", "alerts"):
+                      "site_influence", "uptake_trends", "alerts", "precision_forecasts"):
             rows = getattr(results, table)
             counts[table] = len(rows)
             if not rows:
@@ -96,7 +97,8 @@ def write_results(con: duckdb.DuckDBPyConnection, ctx: RunContext, results: RunR
             arrow = _arrow_table(table, rows)
             con.register("_result_rows", arrow)
             try:
-                con.execute(f'INSERT INTO "{table}" SELECT * FROM _result_rows')
+                cols = ", ".join(f'"{c}"' for c in arrow.column_names)
+                con.execute(f'INSERT INTO "{table}" ({cols}) SELECT {cols} FROM _result_rows')
             finally:
                 con.unregister("_result_rows")
     return counts
