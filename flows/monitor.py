@@ -2,12 +2,11 @@
 
 The flow walks the same stage list as the in-process runner
 (:data:`takeup.pipeline.run.stages.STAGES`), wrapping each stage's function as a
-task: stages that are one vectorised pass over all sites (site estimates,
-pooling, trends, alerts) run as single tasks, and the per-site stage that does
-not vectorise (covariate-adjusted IV fits) is mapped across sites — that is
-what a Dask cluster spreads.  A failing site task marks that site's row
-``status='error'`` and the run finishes as ``partial``.  Collecting the inputs
-and writing the results touch the warehouse and are tasks with retries.
+task.  Every stage is one vectorised pass over all sites (the covariate-adjusted
+rows too: they come from moments aggregated in DuckDB), so each is a single
+task; with the Dask runner the tasks execute on the cluster's workers.
+Collecting the inputs and writing the results touch the warehouse and are
+tasks with retries.
 """
 
 from __future__ import annotations
@@ -56,8 +55,7 @@ def write_task(warehouse: str, ctx: RunContext, results: writer.RunResults, inpu
     try:
         with core.timed(timings, "write"):
             counts = writer.write_results(con, ctx, results)
-        status = "partial" if results.errors else "ok"
-        message = "; ".join(results.errors) if results.errors else None
+        status, message = "ok", None
         writer.finish_run(con, ctx, status, inputs, timings, message)
         return writer.summarise(ctx, status, inputs, counts, results.alerts, timings, message)
     except BaseException as exc:
@@ -75,16 +73,6 @@ class AsTasks:
 
     def one(self, stage: core.Stage, *args: Any) -> Any:
         return self._tasks[stage.name](*args)
-
-    def each(self, stage: core.Stage, arglists: Sequence[tuple]) -> list[tuple[Any, BaseException | None]]:
-        futures = [self._tasks[stage.name].submit(*args) for args in arglists]
-        out: list[tuple[Any, BaseException | None]] = []
-        for fut in futures:
-            try:
-                out.append((fut.result(), None))
-            except Exception as exc:  # a failing site task marks the site, the run goes on
-                out.append((None, exc))
-        return out
 
 
 @flow(name="takeup-monitor", log_prints=False)

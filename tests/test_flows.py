@@ -113,28 +113,27 @@ def test_orchestrated_run_equals_in_process(prefect_api, small_warehouse):
     assert row[0] == "ok" and row[1] == orch.flow_run_id and "site_estimates" in row[2]
 
 
-def test_failing_site_task_marks_site_and_run_partial(prefect_api, small_warehouse, monkeypatch):
+def test_failing_stage_fails_the_run_and_writes_nothing(prefect_api, small_warehouse, monkeypatch):
+    from dataclasses import replace
     from takeup.flows.monitor import run_orchestrated
     from takeup.pipeline.run import stages as core
-    from dataclasses import replace
-    real = core.compute_adjusted_row
 
-    def flaky(frame, base_row, ctx):
-        if base_row["site_id"] == "S2":
-            raise RuntimeError("injected site failure")
-        return real(frame, base_row, ctx)
+    def broken(inputs, ctx, site_rows):
+        raise RuntimeError("injected stage failure")
 
-    monkeypatch.setattr(core, "STAGES", tuple(replace(s, function=flaky) if s.name == "adjusted" else s
+    monkeypatch.setattr(core, "STAGES", tuple(replace(s, function=broken) if s.name == "adjusted" else s
                                               for s in core.STAGES))
-    s = run_orchestrated(small_warehouse, as_of=AS_OF)
-    assert s.status == "partial" and "injected site failure" in s.message
     con = duckdb.connect(str(small_warehouse), read_only=True)
-    rows = con.execute("SELECT site_id, status, note FROM site_estimates WHERE run_id = $r AND status = 'error'",
-                       {"r": s.run_id}).fetchall()
-    run_status = con.execute("SELECT status FROM runs WHERE run_id = $r", {"r": s.run_id}).fetchone()[0]
+    before = con.execute("SELECT count(*) FROM site_estimates").fetchone()[0]
     con.close()
-    assert [r[0] for r in rows] == ["S2"] and "injected site failure" in rows[0][2]
-    assert run_status == "partial"
+    with pytest.raises(Exception, match="injected stage failure"):
+        run_orchestrated(small_warehouse, as_of=AS_OF)
+    con = duckdb.connect(str(small_warehouse), read_only=True)
+    status, message = con.execute("SELECT status, message FROM runs ORDER BY started_at DESC LIMIT 1").fetchone()
+    after = con.execute("SELECT count(*) FROM site_estimates").fetchone()[0]
+    con.close()
+    assert status == "failed" and "injected stage failure" in message
+    assert after == before
 
 
 def test_dask_local_cluster_equals_local_runner(prefect_api, small_warehouse):

@@ -17,8 +17,9 @@ from datetime import date, datetime, timedelta, timezone
 import duckdb
 import pandas as pd
 
-from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, cluster_moments, covariate_cells, outcome_names,
-                                 participant_frame, site_outcome_moments)
+from takeup.pipeline.run.adjusted_sql import AdjustedMoments, adjusted_moments
+from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, cluster_moments, covariate_cells,
+                                            outcome_names, site_outcome_moments)
 from takeup.schemas.config import StudyConfig
 
 __all__ = ["RunContext", "RunInputs", "new_run_context", "collect_inputs", "input_fingerprint"]
@@ -65,7 +66,7 @@ class RunInputs:
     previous_run_id: str | None
     n_batches: int
     input_fingerprint: str
-    participant_frames: dict = field(default_factory=dict)   # (site, outcome) -> frame; adjusted path only
+    adjusted: dict[str, AdjustedMoments] = field(default_factory=dict)   # outcome -> sums; covariate-adjusted rows
     previous_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)         # previous run's site sequences
     previous_pooled_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)  # and its pooled ones
 
@@ -191,18 +192,16 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
         activity = _site_activity(con, ctx)
         prev_id, prev = _previous_alerts(con, ctx)
         prev_site_seq, prev_pooled_seq = _previous_sequences(con, prev_id)
-        frames = {}
-        if config.estimation.adjust_covariates and config.covariates:
-            for site in sites:
-                for outcome in outcomes:
-                    frames[(site, outcome)] = participant_frame(con, site, outcome, list(config.covariates),
-                                                                ctx.data_cutoff)
+        adjusted = {}
+        if config.estimation.adjust_covariates and config.covariates and outcomes:
+            adjusted = adjusted_moments(con, list(sites), list(outcomes), list(config.covariates),
+                                        config.randomisation_unit == "cluster", ctx.data_cutoff)
     finally:
         con.execute("DROP TABLE IF EXISTS _sample")
         con.execute("DROP TABLE IF EXISTS _participants")
     return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,
                      covariate_cells=cells, cohort_counts=cohort, calendar_counts=calendar,
                      site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,
-                     n_batches=n_batches, input_fingerprint=fingerprint, participant_frames=frames,
+                     n_batches=n_batches, input_fingerprint=fingerprint, adjusted=adjusted,
                      previous_sequences=prev_site_seq, previous_pooled_sequences=prev_pooled_seq)
 

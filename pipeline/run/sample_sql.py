@@ -32,7 +32,7 @@ from takeup.pipeline.stats.estimators.moments import ArmMoments, ClusterMoments,
 from takeup.schemas.config import StudyConfig
 
 __all__ = ["SampleSpec", "build_participants", "site_outcome_moments", "cluster_moments", "covariate_cells",
-           "outcome_names", "MomentTable", "moments_for_outcome", "participant_frame"]
+           "outcome_names", "MomentTable", "moments_for_outcome"]
 
 
 @dataclass(frozen=True)
@@ -214,22 +214,3 @@ def cluster_moments_for_outcome(frame: pd.DataFrame, outcome: str, sites: list[s
     return ClusterMoments(site_index=f.site_id.map(pos).to_numpy(), cluster_index=clusters,
                           z=f.z.to_numpy(dtype=float), n=f.n.to_numpy(dtype=float),
                           sum_d=f.sum_d.to_numpy(dtype=float), sum_y=f.sum_y.to_numpy(dtype=float))
-
-
-def participant_frame(con: duckdb.DuckDBPyConnection, site_id: str, outcome: str, covariates: list[str],
-                      data_cutoff: datetime) -> pd.DataFrame:
-    """Participant rows of one site (complete outcome) with covariates pivoted: the covariate-adjusted path only."""
-    cov_sql = ", ".join(f"max(c.value) FILTER (WHERE c.covariate = $cov{i}) AS \"{name}\""
-                        for i, name in enumerate(covariates, start=1))
-    params = {f"cov{i}": name for i, name in enumerate(covariates, start=1)}
-    select_cov = (", " + cov_sql) if covariates else ""
-    sql = f"""
-        SELECT any_value(s.z) AS z, any_value(s.d) AS d, any_value(s.y) AS y,
-               any_value(s.cluster_id) AS cluster_id {select_cov}
-        FROM _sample s LEFT JOIN assignment_covariates c
-          ON c.participant_key = s.participant_key
-         AND c.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $cutoff)
-        WHERE s.site_id = $site AND s.outcome = $outcome AND s.y IS NOT NULL
-        GROUP BY s.participant_key ORDER BY s.participant_key
-    """
-    return con.execute(sql, {"site": site_id, "outcome": outcome, "cutoff": data_cutoff, **params}).df()

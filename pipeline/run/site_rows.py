@@ -136,26 +136,26 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
     return rows
 
 
-def adjusted_row(base: dict, fit, run_id: str) -> dict:
-    """A ``covariate_adjusted`` row from an :class:`AdjustedFit` and the site's unadjusted row."""
+def adjusted_row(base: dict, est, j: int, run_id: str) -> dict:
+    """A ``covariate_adjusted`` row from entry ``j`` of :class:`AdjustedEstimates` and the site's unadjusted row."""
     keep = ("site_id", "outcome", "n_treatment", "n_control", "n_treatment_assigned", "n_control_assigned",
             "missing_outcome_treatment", "missing_outcome_control", "uptake_treatment", "uptake_control",
             "always_taker_share", "never_taker_share", "complier_mean_treated", "complier_mean_untreated")
     row = {k: base[k] for k in keep}
-    tf = tf_interval(np.array([fit.cace]), np.array([fit.cace_se]), np.array([fit.first_stage_f]))
+    tf = tf_interval(est.cace[j:j + 1], est.cace_se[j:j + 1], est.first_stage_f[j:j + 1])
     row.update({
         "run_id": run_id, "spec": "covariate_adjusted",
-        "complier_share": clean(fit.first_stage_coef), "complier_share_se": clean(fit.first_stage_se),
+        "complier_share": clean(est.first_stage_coef[j]), "complier_share_se": clean(est.first_stage_se[j]),
         "itt": None, "itt_se": None,
-        "cace": clean(fit.cace), "cace_se": clean(fit.cace_se),
-        "cace_ci_low": clean(fit.ci_low), "cace_ci_high": clean(fit.ci_high),
-        "first_stage_f": clean(fit.first_stage_f), "ar_set": None, "ar_ci_low": None, "ar_ci_high": None,
+        "cace": clean(est.cace[j]), "cace_se": clean(est.cace_se[j]),
+        "cace_ci_low": clean(est.ci_low[j]), "cace_ci_high": clean(est.ci_high[j]),
+        "first_stage_f": clean(est.first_stage_f[j]), "ar_set": None, "ar_ci_low": None, "ar_ci_high": None,
         "tf_ci_low": clean(tf.low[0]), "tf_ci_high": clean(tf.high[0]), "tf_se": clean(tf.se[0]),
-        "se_type": fit.se_type, "n_clusters": None, "included_in_pool": False,
+        "se_type": est.se_type, "n_clusters": None, "included_in_pool": False,
         "pool_exclusion_reason": "covariate-adjusted rows are reported, not pooled",
-        "status": fit.status,
-        "note": _join_notes(fit.note or None, "complier_share here is the covariate-adjusted first-stage "
-                                              "coefficient; ITT is reported on the unadjusted row"),
+        "status": str(est.status[j]),
+        "note": _join_notes(est.note[j] or None, "complier_share here is the covariate-adjusted first-stage "
+                                                 "coefficient; ITT is reported on the unadjusted row"),
     })
     return row
 

@@ -10,8 +10,8 @@ stage under its name.
    aggregation (the only read; done by the runner, which owns the connection);
 2. ``site_estimates`` — :func:`compute_site_rows`, per-site estimates from moments
    (vectorised over sites);
-3. ``adjusted`` — :func:`compute_adjusted_row`, optional covariate-adjusted IV, one
-   site at a time (the per-site stage a flow maps across workers);
+3. ``adjusted`` — :func:`compute_adjusted_rows`, optional covariate-adjusted IV for all sites
+   from the moments that ``collect_inputs`` aggregated;
 4. ``pooling`` — :func:`compute_pooled`, pooled estimates, subgroup tests, influence;
 5. ``sequential`` — :func:`takeup.pipeline.run.sequence_rows.add_sequences`, the anytime-valid
    columns of site and pooled rows (running intersection with the previous run);
@@ -42,12 +42,12 @@ from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_
 from takeup.pipeline.run.site_rows import adjusted_row, complier_profile_rows, estimate_sites
 from takeup.pipeline.run.trend_rows import compute_trends
 from takeup.pipeline.run.writer import RunResults, RunSummary, finish_run, start_run, summarise, write_results
-from takeup.pipeline.stats.estimators.adjusted import fit_covariate_adjusted
+from takeup.pipeline.stats.estimators.adjusted import adjusted_estimates
 from takeup.pipeline.warehouse import connect, stored_config
 from takeup.schemas.config import StudyConfig
 
 __all__ = ["Stage", "STAGES", "StageCaller", "InProcess", "compute_all", "timed", "run_monitoring",
-           "compute_site_rows", "compute_adjusted_row", "compute_pooled", "site_error_rows", "resolve_config"]
+           "compute_site_rows", "compute_adjusted_rows", "compute_pooled", "resolve_config"]
 
 
 # ----------------------------------------------------------------------------- stage functions
@@ -64,24 +64,16 @@ def compute_site_rows(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], l
     return rows, profile
 
 
-def compute_adjusted_row(frame, base_row: dict, ctx: RunContext) -> dict:
-    """The covariate-adjusted row of one site x outcome (does not vectorise: one IV2SLS fit)."""
-    cluster = "cluster_id" if ctx.config.randomisation_unit == "cluster" else None
-    fit = fit_covariate_adjusted(frame, outcome="y", treatment="d", instrument="z",
-                                 covariates=list(ctx.config.covariates), cluster=cluster)
-    return adjusted_row(base_row, fit, ctx.run_id)
-
-
-def site_error_rows(base_row: dict, message: str) -> dict:
-    """Row written when a site task fails: the site's row with ``status='error'``."""
-    row = dict(base_row)
-    row.update({"spec": "covariate_adjusted", "status": "error", "note": f"site task failed: {message}",
-                "included_in_pool": False, "pool_exclusion_reason": "site task failed"})
-    for k in ("complier_share", "complier_share_se", "itt", "itt_se", "cace", "cace_se", "cace_ci_low",
-              "cace_ci_high", "first_stage_f", "ar_set", "ar_ci_low", "ar_ci_high", "tf_ci_low", "tf_ci_high",
-              "tf_se", "se_type"):
-        row[k] = None
-    return row
+def compute_adjusted_rows(inputs: RunInputs, ctx: RunContext, site_rows: list[dict]) -> list[dict]:
+    """``covariate_adjusted`` rows for every site x outcome, vectorised over sites (from moments)."""
+    base = {(r["site_id"], r["outcome"]): r for r in site_rows if r["spec"] == "unadjusted"}
+    rows = []
+    for outcome, moments in inputs.adjusted.items():
+        est = adjusted_estimates(moments.cross, moments.scores, level=ctx.config.estimation.level)
+        for j, site in enumerate(moments.sites):
+            if (site, outcome) in base:
+                rows.append(adjusted_row(base[(site, outcome)], est, j, ctx.run_id))
+    return rows
 
 
 def compute_pooled(inputs: RunInputs, ctx: RunContext, site_rows: list[dict]
@@ -107,9 +99,6 @@ class StageCaller(Protocol):
     def one(self, stage: "Stage", *args: Any) -> Any:
         """Call the stage's function once and return its value."""
 
-    def each(self, stage: "Stage", arglists: Sequence[tuple]) -> list[tuple[Any, BaseException | None]]:
-        """Call it once per argument tuple; ``(value, None)`` or ``(None, error)`` per call, in order."""
-
 
 @dataclass(frozen=True)
 class Stage:
@@ -131,15 +120,7 @@ def _apply_site_rows(stage, call, inputs, ctx, res):
 
 
 def _apply_adjusted(stage, call, inputs, ctx, res):
-    base = {(r["site_id"], r["outcome"]): r for r in res.site_estimates}
-    keys = list(inputs.participant_frames)
-    outcomes = call.each(stage, [(inputs.participant_frames[k], base[k], ctx) for k in keys])
-    for key, (row, exc) in zip(keys, outcomes):
-        if exc is None:
-            res.site_estimates.append(row)
-        else:  # a failing site task marks that site; the run goes on and ends 'partial'
-            res.site_estimates.append(site_error_rows(base[key], f"{type(exc).__name__}: {exc}"))
-            res.errors.append(f"{key[0]}/{key[1]}: {exc}")
+    res.site_estimates = res.site_estimates + call.one(stage, inputs, ctx, res.site_estimates)
 
 
 def _apply_pooled(stage, call, inputs, ctx, res):
@@ -166,7 +147,7 @@ def _apply_alerts(stage, call, inputs, ctx, res):
 #: The run's computing stages, in order (collect and write, which touch the warehouse, are the runner's).
 STAGES: tuple[Stage, ...] = (
     Stage("site_estimates", "site-estimates", compute_site_rows, _apply_site_rows),
-    Stage("adjusted", "covariate-adjusted-site", compute_adjusted_row, _apply_adjusted),
+    Stage("adjusted", "covariate-adjusted", compute_adjusted_rows, _apply_adjusted),
     Stage("pooling", "pooling", compute_pooled, _apply_pooled),
     Stage("sequential", "anytime-valid-sequences", add_sequences, _apply_sequences),
     Stage("precision", "precision-forecasts", precision_rows, _apply_precision),
@@ -180,15 +161,6 @@ class InProcess:
 
     def one(self, stage: Stage, *args: Any) -> Any:
         return stage.function(*args)
-
-    def each(self, stage: Stage, arglists: Sequence[tuple]) -> list[tuple[Any, BaseException | None]]:
-        out: list[tuple[Any, BaseException | None]] = []
-        for args in arglists:
-            try:
-                out.append((stage.function(*args), None))
-            except Exception as exc:  # a failing site task must not stop the run
-                out.append((None, exc))
-        return out
 
 
 @contextmanager
@@ -207,7 +179,7 @@ def compute_all(inputs: RunInputs, ctx: RunContext, timings: dict, call: StageCa
     call = call or InProcess()
     res = RunResults()
     for stage in (STAGES if stages is None else stages):
-        if stage.name == "adjusted" and not inputs.participant_frames:
+        if stage.name == "adjusted" and not inputs.adjusted:
             continue
         with timed(timings, stage.name):
             stage.apply(stage, call, inputs, ctx, res)
@@ -237,8 +209,7 @@ def run_monitoring(warehouse: Path | str, as_of: date | None = None, config: Stu
         except BaseException as exc:
             finish_run(con, ctx, "failed", inputs, timings, f"{type(exc).__name__}: {exc}")
             raise
-        status = "partial" if results.errors else "ok"
-        message = "; ".join(results.errors) if results.errors else None
+        status, message = "ok", None
         finish_run(con, ctx, status, inputs, timings, message)
         return summarise(ctx, status, inputs, counts, results.alerts, timings, message)
     finally:

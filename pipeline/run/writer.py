@@ -2,8 +2,8 @@
 
 The run's stages (:mod:`takeup.pipeline.run.stages`) compute rows; this module is
 the only one that writes them.  A ``runs`` row is written (status ``running``)
-before the work and updated at the end (``ok``, ``partial`` when some site
-tasks failed, or ``failed``).
+before the work and updated at the end (``ok`` or ``failed``; ``partial`` is kept
+for runs stored by versions whose per-site tasks could fail on their own).
 """
 
 from __future__ import annotations
@@ -44,7 +44,6 @@ class RunResults:
     uptake_trends: list[dict] = field(default_factory=list)
     alerts: list[dict] = field(default_factory=list)
     precision_forecasts: list[dict] = field(default_factory=list)
-    errors: list[str] = field(default_factory=list)
     drift: Any = None   # the trends stage's drift charts, read by the alerts stage (not written)
 
 

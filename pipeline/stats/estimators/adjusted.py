@@ -1,241 +1,301 @@
-"""Covariate-adjusted IV estimate of the complier effect for one site.
+r"""Covariate-adjusted IV estimate of the complier effect, for all sites at once, from moments.
 
-The moment-based estimators are unadjusted (difference in means).  When
-baseline covariates are available, adjusting for them in both stages
-usually tightens the interval.  This path fits, on the participant rows of
-one site,
+When baseline covariates are declared, adjusting for them in both stages
+usually tightens the interval.  Per site the model is
 
-    D = pi0 + X'pi_x + pi_z Z + v          (first stage)
-    Y = a  + X'b    + beta D + u           (structural, D instrumented by Z)
+.. math::
 
-by 2SLS with ``linearmodels.iv.IV2SLS`` and a heteroskedasticity-robust
-(HC1) or one-way cluster-robust (CR1) covariance.  It runs per site on rows
-and does not vectorise over sites; the integration layer calls it once per
-site when covariates are requested.
+    D = \pi_0 + X'\pi_x + \pi_z Z + v \qquad
+    Y = a + X'b + \beta D + u \quad (D \text{ instrumented by } Z),
+
+just identified, with regressors :math:`w = (1, D, X)` and instruments
+:math:`q = (1, Z, X)`; :math:`k = p + 2` parameters for :math:`p` covariates.
+Everything comes from sums that DuckDB aggregates per site
+(:mod:`takeup.pipeline.run.adjusted_sql`); no participant row reaches Python:
+
+* **first pass** — the cross-product matrix :math:`\sum v v'` of
+  :math:`v = (1, Z, D, Y, X)` per site, with every variable centred at its
+  site mean (centring only moves the intercepts; it keeps the sums well
+  conditioned when covariates have large means).  Then
+  :math:`\hat\beta = (Q'W)^{-1} Q'y` and the first stage
+  :math:`\hat\gamma = (Q'Q)^{-1} Q'd`, batched over sites;
+* **second pass** — the robust "meat" with each site's coefficients joined
+  in: :math:`\sum_i \hat u_i^2 q_i q_i'` (HC) or
+  :math:`\sum_g (\sum_{i \in g} \hat u_i q_i)(\sum_{i \in g} \hat u_i q_i)'`
+  (one-way cluster-robust), and the same for the first-stage residuals.
+
+Variances are the sandwich :math:`c\,(Q'W)^{-1} M (W'Q)^{-1}` (first stage:
+:math:`c\,(Q'Q)^{-1} M_v (Q'Q)^{-1}`) with the small-sample factor
+:math:`c = n/(n-k)` (HC1) or :math:`c = \frac{G}{G-1}\frac{n-1}{n-k}` (CR1):
+the same numbers as ``linearmodels`` ``IV2SLS(...).fit(cov_type="robust" |
+"clustered", debiased=True)`` (checked in the tests to 1e-9 / 1e-6), whose
+interval uses :math:`t_{n-k}`.
+
+References
+----------
+.. [1] Card, D. (1995). Using geographic variation in college proximity to
+   estimate the return to schooling. In L. N. Christofides, E. K. Grant and
+   R. Swidinsky (eds.), *Aspects of Labour Market Behaviour*, 201-222.
+   University of Toronto Press.  (Wooldridge, *Introductory Econometrics*,
+   Example 15.4, is the specification used in the tests.)
+.. [2] MacKinnon, J. G. and White, H. (1985). Some heteroskedasticity-consistent
+   covariance matrix estimators with improved finite sample properties.
+   *Journal of Econometrics*, 29(3), 305-325.
+.. [3] Cameron, A. C. and Miller, D. L. (2015). A practitioner's guide to
+   cluster-robust inference. *Journal of Human Resources*, 50(2), 317-372.
+.. [4] Montiel Olea, J. L. and Pflueger, C. (2013). A robust test for weak
+   instruments. *Journal of Business & Economic Statistics*, 31(3), 358-369.
 """
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
+from scipy import stats
 
-__all__ = ["AdjustedFit", "fit_covariate_adjusted"]
+__all__ = ["CrossMoments", "ScoreMoments", "AdjustedEstimates", "adjusted_coefficients", "adjusted_estimates",
+           "cross_moments_from_arrays", "score_moments_from_arrays", "V_NAMES", "q_index", "w_index"]
+
+#: order of the variables in the cross-product matrix (covariates follow, in declared order)
+V_NAMES = ("one", "z", "d", "y")
+
+
+def q_index(p: int) -> list[int]:
+    """Positions of the instruments (1, Z, X) in the cross-product matrix."""
+    return [0, 1, *range(4, 4 + p)]
+
+
+def w_index(p: int) -> list[int]:
+    """Positions of the regressors (1, D, X)."""
+    return [0, 2, *range(4, 4 + p)]
+
+
+def _ro(a, dtype=float) -> np.ndarray:
+    a = np.array(a, dtype=dtype, copy=True)
+    a.setflags(write=False)
+    return a
 
 
 @dataclass(frozen=True)
-class AdjustedFit:
-    """Result of :func:`fit_covariate_adjusted` (read-only).
+class CrossMoments:
+    """First-pass sums per site: ``n`` and :math:`\\sum v v'` of the site-centred ``v = (1, Z, D, Y, X)``.
+
+    ``cross[:, 0, 0] = n`` and the centred variables' sums ``cross[:, 0, j]`` are 0 up to rounding.
+    """
+
+    n: np.ndarray            # (S,)
+    cross: np.ndarray        # (S, m, m), m = p + 4
+    n_covariates: int
+
+
+@dataclass(frozen=True)
+class ScoreMoments:
+    """Second-pass sums per site: the meat of the 2SLS and of the first-stage sandwich."""
+
+    meat_iv: np.ndarray      # (S, k, k)
+    meat_fs: np.ndarray      # (S, k, k)
+    n_clusters: np.ndarray | None   # (S,) for cluster-robust meats, else None
+
+
+def _solve(a: np.ndarray, b: np.ndarray, ok: np.ndarray) -> np.ndarray:
+    out = np.full(b.shape, np.nan)
+    if ok.any():
+        out[ok] = np.linalg.solve(a[ok], b[ok][..., None])[..., 0]
+    return out
+
+
+def _ranks(a: np.ndarray) -> np.ndarray:
+    finite = np.isfinite(a).all(axis=(1, 2))
+    r = np.zeros(a.shape[0], dtype=int)
+    if finite.any():
+        r[finite] = np.linalg.matrix_rank(a[finite])
+    return r
+
+
+def adjusted_coefficients(cm: CrossMoments) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """2SLS coefficients ``beta`` (on w), first-stage coefficients ``gamma`` (on q), and a status per site.
+
+    Status ``ok``, ``too_few_rows``, ``constant_instrument``, ``singular_design`` or
+    ``zero_first_stage``; coefficients are NaN where the status is not ``ok``.
+    """
+    p = cm.n_covariates
+    k = p + 2
+    qi, wi = q_index(p), w_index(p)
+    c = cm.cross
+    qq = c[:, qi][:, :, qi]
+    qw = c[:, qi][:, :, wi]
+    qy = c[:, qi, 3]
+    qd = c[:, qi, 2]
+    n = cm.n.astype(float)
+    status = np.full(n.shape[0], "ok", dtype=object)
+    with np.errstate(all="ignore"):
+        z_var = c[:, 1, 1] / np.where(n > 0, n, 1.0)
+    status[_ranks(qw) < k] = "zero_first_stage"
+    status[_ranks(qq) < k] = "singular_design"
+    status[~(z_var > 1e-12)] = "constant_instrument"
+    status[n <= k] = "too_few_rows"
+    ok = status == "ok"
+    beta = _solve(qw, qy, ok)
+    gamma = _solve(qq, qd, ok)
+    return beta, gamma, status
+
+
+_NOTES = {
+    "too_few_rows": "{n} complete rows for {k} parameters: CACE undefined",
+    "constant_instrument": "instrument does not vary: first stage and CACE undefined",
+    "singular_design": "constant, covariates and instrument are collinear: first stage and CACE undefined",
+    "zero_first_stage": "instrument does not move the treatment given the covariates (first stage is zero): "
+                        "CACE undefined",
+    "too_few_clusters": "fewer than two clusters: cluster-robust SE undefined",
+}
+
+
+@dataclass(frozen=True)
+class AdjustedEstimates:
+    """Covariate-adjusted estimates, one entry per site (read-only arrays).
 
     Attributes
     ----------
-    cace : float
-        2SLS coefficient on the treatment (complier effect, covariate
-        adjusted).
-    cace_se : float
-        Its HC1 or CR1 standard error.
-    ci_low, ci_high : float
-        Confidence interval at 95%: ``cace -/+ t_{n-k, 0.975} * cace_se``
-        (``k`` = number of second-stage parameters), as in ``linearmodels``
-        with ``debiased=True``.
-    first_stage_coef, first_stage_se : float
-        Coefficient on the instrument in the first-stage regression of the
-        treatment on constant, covariates and instrument, and its standard
-        error with the same covariance type.
-    first_stage_f : float
-        Robust first-stage F statistic, ``(first_stage_coef /
-        first_stage_se)**2`` (one instrument: the Wald statistic; with one
-        instrument it is also the effective F of Montiel Olea and Pflueger).
-    n : int
-        Rows used (after dropping rows with a missing or non-finite value
-        in any column used).
+    cace, cace_se : ndarray
+        2SLS coefficient on D and its HC1 or CR1 standard error.
+    ci_low, ci_high : ndarray
+        ``cace -/+ t_{n-k}(1 - (1 - level)/2) * cace_se``.
+    first_stage_coef, first_stage_se, first_stage_f : ndarray
+        Coefficient on Z in the regression of D on (1, Z, X), its SE (same
+        covariance type) and the robust first-stage F = t^2 (one instrument:
+        also the effective F of Montiel Olea & Pflueger 2013).
+    n : ndarray
+        Complete rows used.
     se_type : str
         ``"HC1-adjusted"`` or ``"CR1-adjusted"``.
-    status : str
-        ``"ok"`` or the reason the estimate is undefined:
-        ``"missing_column"``, ``"non_numeric_column"``, ``"too_few_rows"``,
-        ``"too_few_clusters"``, ``"constant_instrument"``,
-        ``"singular_design"``, ``"zero_first_stage"``,
-        ``"estimation_failed"``.
-    note : str
-        Human-readable explanation; empty when there is nothing to report.
+    status, note : ndarray of object
     """
 
-    cace: float
-    cace_se: float
-    ci_low: float
-    ci_high: float
-    first_stage_coef: float
-    first_stage_se: float
-    first_stage_f: float
-    n: int
+    cace: np.ndarray
+    cace_se: np.ndarray
+    ci_low: np.ndarray
+    ci_high: np.ndarray
+    first_stage_coef: np.ndarray
+    first_stage_se: np.ndarray
+    first_stage_f: np.ndarray
+    n: np.ndarray
     se_type: str
-    status: str
-    note: str
+    status: np.ndarray
+    note: np.ndarray
 
 
-def _undefined(n: int, se_type: str, status: str, note: str) -> AdjustedFit:
-    nan = float("nan")
-    return AdjustedFit(nan, nan, nan, nan, nan, nan, nan, int(n), se_type, status, note)
+def adjusted_estimates(cm: CrossMoments, sm: ScoreMoments, level: float = 0.95) -> AdjustedEstimates:
+    """Estimates and robust (HC1) or cluster-robust (CR1) standard errors from the two passes' sums."""
+    if not (0.0 < level < 1.0):
+        raise ValueError(f"level must be strictly between 0 and 1, got {level!r}")
+    p = cm.n_covariates
+    k = p + 2
+    qi, wi = q_index(p), w_index(p)
+    beta, gamma, status = adjusted_coefficients(cm)
+    n = cm.n.astype(float)
+    clustered = sm.n_clusters is not None
+    g = sm.n_clusters.astype(float) if clustered else None
+    if clustered:
+        status = np.where((status == "ok") & ~(g >= 2), "too_few_clusters", status).astype(object)
+    ok = status == "ok"
+    c = cm.cross
+    qq = c[:, qi][:, :, qi]
+    qw = c[:, qi][:, :, wi]
+    with np.errstate(all="ignore"):
+        if clustered:
+            scale = np.where(ok, g / (g - 1) * (n - 1) / (n - k), np.nan)
+        else:
+            scale = np.where(ok, n / (n - k), np.nan)
+    v_iv = np.full(n.shape[0], np.nan)
+    v_fs = np.full(n.shape[0], np.nan)
+    if ok.any():
+        a_inv = np.linalg.inv(qw[ok])
+        v = a_inv @ sm.meat_iv[ok] @ np.swapaxes(a_inv, 1, 2)
+        v_iv[ok] = scale[ok] * v[:, 1, 1]
+        b_inv = np.linalg.inv(qq[ok])
+        vf = b_inv @ sm.meat_fs[ok] @ b_inv
+        v_fs[ok] = scale[ok] * vf[:, 1, 1]
+    with np.errstate(all="ignore"):
+        cace = np.where(ok, beta[:, 1], np.nan)
+        se = np.where(ok & (v_iv >= 0), np.sqrt(v_iv), np.nan)
+        fs = np.where(ok, gamma[:, 1], np.nan)
+        fs_se = np.where(ok & (v_fs >= 0), np.sqrt(v_fs), np.nan)
+        f_stat = np.where(fs_se > 0, (fs / np.where(fs_se > 0, fs_se, 1.0)) ** 2, np.nan)
+        tq = stats.t.ppf(1 - (1 - level) / 2, np.where(n - k > 0, n - k, np.nan))
+        lo, hi = cace - tq * se, cace + tq * se
+    notes = np.full(n.shape[0], "", dtype=object)
+    for i in np.flatnonzero(~ok):
+        notes[i] = _NOTES[str(status[i])].format(n=int(n[i]), k=k)
+    for i in np.flatnonzero(ok & ~(fs_se > 0)):
+        notes[i] = "first-stage standard error is zero: F undefined"
+    if clustered:
+        for i in np.flatnonzero(ok & (g < k)):
+            notes[i] = "; ".join(x for x in (notes[i], f"{int(g[i])} clusters for {k} parameters: "
+                                                       "cluster-robust covariance is rank deficient") if x)
+    notes.setflags(write=False)
+    status = np.asarray(status, dtype=object)
+    status.setflags(write=False)
+    return AdjustedEstimates(cace=_ro(cace), cace_se=_ro(se), ci_low=_ro(lo), ci_high=_ro(hi),
+                             first_stage_coef=_ro(fs), first_stage_se=_ro(fs_se), first_stage_f=_ro(f_stat),
+                             n=_ro(n, dtype=np.int64), se_type="CR1-adjusted" if clustered else "HC1-adjusted",
+                             status=status, note=notes)
 
 
-def _finite_or_nan(x) -> float:
-    x = float(x)
-    return x if np.isfinite(x) else float("nan")
+# ----------------------------------------------------------------------------- numpy twins (tests, benchmarks)
+def _stack(site, z, d, y, x):
+    site = np.asarray(site)
+    x = np.zeros((len(site), 0)) if x is None else np.asarray(x, dtype=float).reshape(len(site), -1)
+    v = np.column_stack([np.ones(len(site)), np.asarray(z, float), np.asarray(d, float), np.asarray(y, float), x])
+    keep = np.isfinite(v).all(axis=1)
+    return site, v, keep
 
 
-def fit_covariate_adjusted(frame: pd.DataFrame, outcome: str, treatment: str,
-                           instrument: str, covariates: list[str],
-                           cluster: str | None = None) -> AdjustedFit:
-    r"""Covariate-adjusted 2SLS complier effect with robust inference.
+def cross_moments_from_arrays(site, z, d, y, x=None) -> tuple[list, CrossMoments]:
+    """The first pass computed in numpy from participant arrays (complete rows only), for tests.
 
-    Parameters
-    ----------
-    frame : pandas.DataFrame
-        Participant rows of one site (not modified).
-    outcome, treatment, instrument : str
-        Column names of ``Y``, ``D`` (endogenous) and ``Z`` (excluded
-        instrument, e.g. randomised assignment).
-    covariates : list of str
-        Exogenous baseline covariates; a constant is always added.  May be
-        empty (then the estimate is the Wald estimate).
-    cluster : str, optional
-        Column of cluster labels.  If given, the covariance is one-way
-        cluster-robust with the CR1 factor ``G/(G-1) * (n-1)/(n-k)``;
-        otherwise heteroskedasticity-robust HC1, ``n/(n-k)`` times the HC0
-        sandwich.
-
-    Returns
-    -------
-    AdjustedFit
-        Degenerate inputs give NaN statistics with ``status`` and ``note``
-        set; the function does not raise on data problems.
-
-    Notes
-    -----
-    Rows with a missing or non-finite value in any column used (including
-    the cluster column) are dropped first; ``n`` is the number kept.  The
-    estimate is undefined when ``n`` does not exceed the number of
-    second-stage parameters ``k = len(covariates) + 2``, when the
-    instrument is constant, when ``[1, X, Z]`` is rank deficient (e.g. the
-    instrument is collinear with the covariates), when the instrumented
-    design ``[1, X, \hat D]`` is rank deficient (zero first stage), or with
-    fewer than two clusters.
-
-    Covariance and interval: ``linearmodels`` ``IV2SLS.fit`` with
-    ``cov_type="robust"`` or ``"clustered"`` and ``debiased=True``; the
-    interval uses the :math:`t_{n-k}` quantile.
-
-    References
-    ----------
-    Card, D. (1995). Using geographic variation in college proximity to
-    estimate the return to schooling. In L. N. Christofides, E. K. Grant and
-    R. Swidinsky (eds.), *Aspects of Labour Market Behaviour*, 201-222.
-    University of Toronto Press.
-
-    Wooldridge, J. M. *Introductory Econometrics: A Modern Approach*,
-    Example 15.4 (the specification used in the tests).
-
-    MacKinnon, J. G. and White, H. (1985). Some heteroskedasticity-consistent
-    covariance matrix estimators with improved finite sample properties.
-    *Journal of Econometrics*, 29(3), 305-325.
-
-    Cameron, A. C. and Miller, D. L. (2015). A practitioner's guide to
-    cluster-robust inference. *Journal of Human Resources*, 50(2), 317-372.
-
-    Montiel Olea, J. L. and Pflueger, C. (2013). A robust test for weak
-    instruments. *Journal of Business & Economic Statistics*, 31(3),
-    358-369.
+    Returns ``(sites, CrossMoments)`` with sites in sorted order.
     """
-    from linearmodels.iv import IV2SLS  # heavy import, only needed here
+    site, v, keep = _stack(site, z, d, y, x)
+    sites = sorted(set(site[keep].tolist()))
+    m = v.shape[1]
+    cross = np.zeros((len(sites), m, m))
+    n = np.zeros(len(sites))
+    for j, s in enumerate(sites):
+        rows = v[keep & (site == s)]
+        c = rows.copy()
+        c[:, 1:] -= rows[:, 1:].mean(axis=0)
+        cross[j] = c.T @ c
+        n[j] = len(rows)
+    return sites, CrossMoments(n=n, cross=cross, n_covariates=m - 4)
 
-    se_type = "CR1-adjusted" if cluster is not None else "HC1-adjusted"
-    covariates = list(covariates)
-    numeric_cols = [outcome, treatment, instrument, *covariates]
-    needed = numeric_cols + ([cluster] if cluster is not None else [])
-    missing = [c for c in dict.fromkeys(needed) if c not in frame.columns]
-    if missing:
-        return _undefined(0, se_type, "missing_column",
-                          f"column(s) {missing} not in the data: CACE undefined")
 
-    sub = frame.loc[:, list(dict.fromkeys(needed))]
-    try:
-        num = sub.loc[:, list(dict.fromkeys(numeric_cols))].astype(float)
-    except (TypeError, ValueError):
-        return _undefined(0, se_type, "non_numeric_column",
-                          "a model column is not numeric: CACE undefined")
-    keep = np.isfinite(num.to_numpy()).all(axis=1)
-    if cluster is not None:
-        keep &= sub[cluster].notna().to_numpy()
-    num = num.loc[keep]
-    n = int(keep.sum())
-
-    k = len(covariates) + 2
-    if n <= k:
-        return _undefined(n, se_type, "too_few_rows",
-                          f"{n} complete rows for {k} parameters: CACE undefined")
-
-    z = num[instrument].to_numpy()
-    if np.all(z == z[0]):
-        return _undefined(n, se_type, "constant_instrument",
-                          "instrument does not vary: first stage and CACE undefined")
-
-    const_name = "const"
-    while const_name in numeric_cols:
-        const_name = "_" + const_name
-    exog = pd.DataFrame({const_name: np.ones(n)}, index=num.index)
-    for c in covariates:
-        exog[c] = num[c].to_numpy()
-    exog_instr = np.column_stack([exog.to_numpy(), z])
-    if np.linalg.matrix_rank(exog_instr) < exog_instr.shape[1]:
-        return _undefined(n, se_type, "singular_design",
-                          "constant, covariates and instrument are collinear: "
-                          "first stage and CACE undefined")
-    d = num[treatment].to_numpy()
-    coef, *_ = np.linalg.lstsq(exog_instr, d, rcond=None)
-    x_hat = np.column_stack([exog.to_numpy(), exog_instr @ coef])
-    if np.linalg.matrix_rank(x_hat) < x_hat.shape[1]:
-        return _undefined(n, se_type, "zero_first_stage",
-                          "instrument does not move the treatment given the "
-                          "covariates (first stage is zero): CACE undefined")
-
-    fit_kwargs: dict = {"debiased": True}
-    if cluster is not None:
-        groups = pd.factorize(sub.loc[keep, cluster])[0]
-        if np.unique(groups).size < 2:
-            return _undefined(n, se_type, "too_few_clusters",
-                              "fewer than two clusters: cluster-robust SE undefined")
-        fit_kwargs.update(cov_type="clustered", clusters=groups)
-    else:
-        fit_kwargs.update(cov_type="robust")
-
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            res = IV2SLS(num[outcome], exog, num[treatment], num[instrument]).fit(**fit_kwargs)
-            fs = res.first_stage.individual[treatment]
-            ci = res.conf_int(level=0.95).loc[treatment]
-    except (ValueError, np.linalg.LinAlgError) as exc:
-        return _undefined(n, se_type, "estimation_failed",
-                          f"2SLS fit failed ({exc}): CACE undefined")
-
-    cace = _finite_or_nan(res.params[treatment])
-    cace_se = _finite_or_nan(res.std_errors[treatment])
-    fs_coef = _finite_or_nan(fs.params[instrument])
-    fs_se = _finite_or_nan(fs.std_errors[instrument])
-    notes = []
-    if fs_se > 0:
-        fs_f = _finite_or_nan((fs_coef / fs_se) ** 2)
-    else:
-        fs_f = float("nan")
-        notes.append("first-stage standard error is zero: F undefined")
-    ci_low, ci_high = _finite_or_nan(ci["lower"]), _finite_or_nan(ci["upper"])
-    if cluster is not None and np.unique(groups).size < k:
-        notes.append(f"{np.unique(groups).size} clusters for {k} parameters: "
-                     "cluster-robust covariance is rank deficient")
-    return AdjustedFit(cace=cace, cace_se=cace_se, ci_low=ci_low, ci_high=ci_high,
-                       first_stage_coef=fs_coef, first_stage_se=fs_se,
-                       first_stage_f=fs_f, n=n, se_type=se_type, status="ok",
-                       note="; ".join(notes))
+def score_moments_from_arrays(site, z, d, y, x, beta, gamma, sites, cluster=None) -> ScoreMoments:
+    """The second pass computed in numpy (residuals from each site's coefficients), for tests."""
+    site_arr, v, keep = _stack(site, z, d, y, x)
+    p = v.shape[1] - 4
+    qi, wi = q_index(p), w_index(p)
+    k = p + 2
+    meat_iv = np.zeros((len(sites), k, k))
+    meat_fs = np.zeros((len(sites), k, k))
+    g = np.zeros(len(sites)) if cluster is not None else None
+    cl = np.asarray(cluster) if cluster is not None else None
+    for j, s in enumerate(sites):
+        sel = keep & (site_arr == s)
+        rows = v[sel].copy()
+        rows[:, 1:] -= rows[:, 1:].mean(axis=0)
+        q, w = rows[:, qi], rows[:, wi]
+        u = rows[:, 3] - w @ beta[j]
+        e = rows[:, 2] - q @ gamma[j]
+        if cl is None:
+            meat_iv[j] = (q * u[:, None] ** 2).T @ q
+            meat_fs[j] = (q * e[:, None] ** 2).T @ q
+        else:
+            labels = cl[sel]
+            for lab in np.unique(labels):
+                m = labels == lab
+                su, se = (q[m] * u[m, None]).sum(axis=0), (q[m] * e[m, None]).sum(axis=0)
+                meat_iv[j] += np.outer(su, su)
+                meat_fs[j] += np.outer(se, se)
+            g[j] = len(np.unique(labels))
+    return ScoreMoments(meat_iv=meat_iv, meat_fs=meat_fs, n_clusters=g)
