@@ -62,8 +62,13 @@ def site_names(k: int) -> list[str]:
 
 
 def simulate_clean_study(n_sites: int, seed: int, median_weekly: float = 10.0, cace_mean: float = 6.0,
-                         cace_sd: float = 1.0, share_two_to_one: float = 0.1) -> CleanStudy:
-    """Simulate one clean study (see the module docstring for the model)."""
+                         cace_sd: float = 1.0, share_two_to_one: float = 0.1,
+                         planted_cace: dict[int, float] | None = None) -> CleanStudy:
+    """Simulate one clean study (see the module docstring for the model).
+
+    ``planted_cace`` (site index -> true CACE) replaces the drawn effect of a few sites:
+    the one departure from "clean", for tests that need a known outlier.
+    """
     import pyarrow as pa
     from takeup.schemas.config import FollowUp, OutcomeSpec, SiteSpec, StudyConfig
 
@@ -83,6 +88,8 @@ def simulate_clean_study(n_sites: int, seed: int, median_weekly: float = 10.0, c
     mu = rng.normal(50.0, 5.0, k)
     sd = rng.uniform(8.0, 12.0, k)
     cace = rng.normal(cace_mean, cace_sd, k)
+    for i, value in (planted_cace or {}).items():
+        cace[i] = value
     # --- accrual: weekly Poisson counts per site, then participants
     weeks = np.arange(SEASON_WEEKS)
     counts = rng.poisson(rate[:, None] * (weeks[None, :] >= start_week[:, None]))

@@ -128,6 +128,12 @@ def build_parser() -> argparse.ArgumentParser:
     _warehouse_arg(p)
     p.add_argument("--out", type=Path, required=True, help="output HTML file")
     p.add_argument("--run", help="run id (default: the latest finished run)")
+    p.add_argument("--flagged-sites", type=int, default=30, metavar="N",
+                   help="more than 40 sites: forest plot and trend panels for at most N sites with an active "
+                        "alert (default 30)")
+    p.add_argument("--influential-sites", type=int, default=10, metavar="N",
+                   help="more than 40 sites: and for the N other sites whose removal moves the pooled CACE most "
+                        "(default 10)")
 
     p = sub.add_parser("serve", help="serve the ingest and monitoring flows on the study's schedule",
                        description="Register both flows as Prefect deployments with the cron schedule of the "
@@ -446,7 +452,10 @@ def cmd_report(args) -> int:
     from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
-        path = render_report(con, args.out, args.run)
+        if args.flagged_sites < 0 or args.influential_sites < 0:
+            raise UsageError("--flagged-sites and --influential-sites must be 0 or more")
+        path = render_report(con, args.out, args.run, max_flagged=args.flagged_sites,
+                             n_influential=args.influential_sites)
     finally:
         con.close()
     print(f"report: {path}")
