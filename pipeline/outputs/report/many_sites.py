@@ -36,6 +36,8 @@ MANY_SITES = 40
 _SEVERITY_RANK = {"critical": 0, "warning": 1, "info": 2}
 
 TABLE_CSS = """
+td, th { overflow-wrap: anywhere; }
+td.num, th.num { white-space: normal; }
 .filters { display: flex; flex-wrap: wrap; gap: 8px 16px; align-items: center; margin: 8px 0; }
 .filters input, .filters select { font: inherit; padding: 3px 6px; }
 table.sites { table-layout: fixed; font-size: .82rem; }
