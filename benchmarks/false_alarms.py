@@ -52,7 +52,7 @@ RULE_KINDS = {
     "control_uptake_drift": ("CUSUM, in-control ARL 2,000 participants", None),
     "treatment_uptake_drift": ("CUSUM, in-control ARL 2,000 participants", None),
     "weak_first_stage": ("threshold F < 10 (a small site's instrument is weak)", None),
-    "stale_site": ("threshold 14 days", 0.0),
+    "stale_site": ("threshold 14 days (every site sends up to the cutoff)", 0.0),
 }
 #: alternative drift settings measured on the same data
 VARIANTS = {
@@ -60,6 +60,7 @@ VARIANTS = {
     "drift_baseline_periods = 8": {"drift_baseline_periods": 8},
     "drift_arl0 = 20000": {"drift_arl0": 20000.0},
     "drift_odds_ratio = 4": {"drift_odds_ratio": 4.0},
+    "drift_arl0 = 20000, drift_baseline_periods = 8": {"drift_arl0": 20000.0, "drift_baseline_periods": 8},
 }
 
 
@@ -125,7 +126,7 @@ def render(results: list[dict], seed: int) -> str:
         f"{r['k']:,} sites ({r['n']:,} participants)" for r in results) + " | met |"
     lines += [head, "|---|---|---:|" + "---:|" * len(results) + ":---:|"]
     for rule, (kind, nominal) in RULE_KINDS.items():
-        target = "" if nominal is None else f"<= {100 * nominal:g}%"
+        target = "" if nominal is None else ("none" if nominal == 0 else f"<= {100 * nominal:g}%")
         if nominal is None:
             ok = ""
         else:
