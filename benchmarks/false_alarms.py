@@ -87,6 +87,13 @@ def measure(k: int, seed: int, scratch: Path) -> dict:
     try:
         shares = alert_shares(con, summary.run_id, k)
         timings = con.execute("SELECT timings_json FROM runs WHERE run_id = $r", {"r": summary.run_id}).fetchone()[0]
+        # for comparison: the replaced outlier rule (estimate outside the REML prediction interval)
+        old = con.execute(
+            "SELECT count(*) FROM site_estimates s, pooled_estimates p WHERE s.run_id = $r AND p.run_id = $r "
+            "AND s.spec = 'unadjusted' AND s.included_in_pool AND p.quantity = 'cace' AND p.method = 'reml' "
+            "AND p.group_field IS NULL AND p.outcome = s.outcome AND (s.cace < p.pi_low OR s.cace > p.pi_high)",
+            {"r": summary.run_id}).fetchone()[0]
+        shares["replaced_pi_rule"] = (int(old), old / k)
     finally:
         con.close()
     variants = {}
@@ -136,6 +143,8 @@ def render(results: list[dict], seed: int) -> str:
     ok_any = "yes" if all(r["shares"]["any"][1] <= TARGET_ANY for r in results) else "**no**"
     lines.append(f"| any alert | | <= {100 * TARGET_ANY:g}% | " + " | ".join(_cell(r["shares"], "any") for r in results)
                  + f" | {ok_any} |")
+    lines.append("| for comparison: the replaced `outlier_site` rule (CACE outside the REML prediction interval) "
+                 "| | | " + " | ".join(_cell(r["shares"], "replaced_pi_rule") for r in results) + " | |")
     lines += ["", "The drift rules under other settings (one more run on the same data each):", "",
               "| setting | " + " | ".join(f"{r['k']:,} sites: control / treatment drift / any alert" for r in results)
               + " |", "|---|" + "---:|" * len(results)]

@@ -1,18 +1,18 @@
 """The self-contained HTML report of one monitoring run.
 
 One file, no network: the CSS is inline, the charts are inline SVG, there
-are no scripts, fonts or images to fetch.  Every value read from the
+are no fonts or images to fetch; up to 40 sites there is no script, above it one
+small inline script sorts and filters the tables (:mod:`.many_sites`).  Every value read from the
 database is passed through :func:`html.escape` before it is written.
 """
 
 from __future__ import annotations
 
 import html
-import math
 import os
 import secrets
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any
 
 import duckdb
 import pandas as pd
