@@ -5,6 +5,8 @@
 and computes empirical-Bayes (BLUP) site effects shrunk toward the pooled
 estimate.  :func:`empirical_bayes` does the shrinkage alone, for callers that
 already hold a :class:`~takeup.pipeline.stats.meta_analysis.meta.MetaResult`.
+:func:`outlier_test` turns the leave-one-out quantities into a two-sided p-value
+and a reference range per site (the ``outlier_site`` alert).
 """
 
 from __future__ import annotations
