@@ -110,7 +110,11 @@ def build_parser() -> argparse.ArgumentParser:
     _warehouse_arg(p)
     p.add_argument("--run", help="run id (default: the latest finished run)")
     p.add_argument("--status", choices=["new", "ongoing", "resolved"], help="only alerts with this status")
-    p.add_argument("--json", action="store_true", help="machine-readable output")
+    p.add_argument("--severity", choices=["critical", "warning", "info"], action="append",
+                   help="only alerts of this severity (repeat for several)")
+    p.add_argument("--rule", action="append", metavar="RULE", help="only alerts of this rule (repeat for several)")
+    p.add_argument("--site", action="append", metavar="SITE", help="only alerts of this site (repeat for several)")
+    p.add_argument("--json", action="store_true", help="machine-readable output (the rows only)")
 
     p = sub.add_parser("export", help="write the result tables of a run to files",
                        description="One file per result table (Parquet or CSV).")
@@ -124,6 +128,12 @@ def build_parser() -> argparse.ArgumentParser:
     _warehouse_arg(p)
     p.add_argument("--out", type=Path, required=True, help="output HTML file")
     p.add_argument("--run", help="run id (default: the latest finished run)")
+    p.add_argument("--flagged-sites", type=int, default=30, metavar="N",
+                   help="more than 40 sites: forest plot and trend panels for at most N sites with an active "
+                        "alert (default 30)")
+    p.add_argument("--influential-sites", type=int, default=10, metavar="N",
+                   help="more than 40 sites: and for the N other sites whose removal moves the pooled CACE most "
+                        "(default 10)")
 
     p = sub.add_parser("serve", help="serve the ingest and monitoring flows on the study's schedule",
                        description="Register both flows as Prefect deployments with the cron schedule of the "
@@ -354,23 +364,72 @@ def cmd_runs(args) -> int:
     return EXIT_OK
 
 
+def _check_names(option: str, given: list[str] | None, valid: set[str], what: str) -> None:
+    """Reject an unknown --rule/--site value, naming the nearest valid one."""
+    for name in given or ():
+        if name in valid:
+            continue
+        hint = difflib.get_close_matches(name, sorted(valid), n=1, cutoff=0.5)
+        suggestion = f"; did you mean {hint[0]!r}?" if hint else ""
+        shown = sorted(valid)
+        listing = ", ".join(shown[:12]) + (f" and {len(shown) - 12} more" if len(shown) > 12 else "")
+        raise UsageError(f"{option}: unknown {what} {name!r}{suggestion} (known: {listing or 'none'})")
+
+
+def alert_summary(df) -> "object":
+    """Counts of alert rows by rule and severity (columns new, ongoing, resolved, sites), most severe first."""
+    import pandas as pd
+    cols = ["rule", "severity", "new", "ongoing", "resolved", "sites"]
+    if df.empty:
+        return pd.DataFrame(columns=cols)
+    g = df.groupby(["rule", "severity"], dropna=False)
+    out = g["status"].value_counts().unstack(fill_value=0).reindex(columns=["new", "ongoing", "resolved"],
+                                                                    fill_value=0)
+    out["sites"] = g["site_id"].nunique()
+    out = out.reset_index()
+    rank = out["severity"].map({"critical": 0, "warning": 1, "info": 2}).fillna(3)
+    out = out.assign(_r=rank).sort_values(["_r", "rule"], kind="stable").drop(columns="_r")
+    return out[cols].reset_index(drop=True)
+
+
 def cmd_alerts(args) -> int:
+    from takeup.pipeline.run.alert_rules import RULES
     from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
         run = _latest_run(con, args.run)
+        if args.rule:
+            known = {r[0] for r in con.execute("SELECT DISTINCT rule FROM alerts").fetchall()}
+            _check_names("--rule", args.rule, set(RULES) | known, "rule")
+        if args.site:
+            known = {r[0] for r in con.execute(
+                "SELECT site_id FROM alerts WHERE site_id IS NOT NULL UNION "
+                "SELECT site_id FROM site_estimates WHERE run_id = $r", {"r": run}).fetchall()}
+            _check_names("--site", args.site, known, "site")
         df = con.execute("""
             SELECT status, severity, rule, site_id, outcome, value, threshold, p_value, first_seen_run_id, message
             FROM alerts WHERE run_id = $r AND ($s IS NULL OR status = $s)
+              AND ($sev IS NULL OR list_contains($sev, severity))
+              AND ($rules IS NULL OR list_contains($rules, rule))
+              AND ($sites IS NULL OR list_contains($sites, site_id))
             ORDER BY CASE status WHEN 'new' THEN 0 WHEN 'ongoing' THEN 1 ELSE 2 END,
                      CASE severity WHEN 'critical' THEN 0 WHEN 'warning' THEN 1 ELSE 2 END, rule, site_id
-        """, {"r": run, "s": args.status}).df()
+        """, {"r": run, "s": args.status, "sev": args.severity, "rules": args.rule, "sites": args.site}).df()
     finally:
         con.close()
     if args.json:
         print(df.to_json(orient="records", double_precision=6))
         return EXIT_OK
-    print(f"alerts of run {run} (prompts for human review, not decisions):")
+    filters = [f"{name} {', '.join(v) if isinstance(v, list) else v}" for name, v in
+               (("status", args.status), ("severity", args.severity), ("rule", args.rule), ("site", args.site)) if v]
+    n_sites = df["site_id"].nunique()
+    print(f"alerts of run {run} (prompts for human review, not decisions)"
+          + (f"; filtered by {'; '.join(filters)}" if filters else "")
+          + f": {len(df)} row{'s' if len(df) != 1 else ''}, {n_sites} site{'s' if n_sites != 1 else ''}")
+    if not df.empty:
+        print("summary by rule and severity:")
+        _print_table(alert_summary(df))
+        print("rows:")
     _print_table(df.drop(columns=["first_seen_run_id"]))
     return EXIT_OK
 
@@ -393,7 +452,10 @@ def cmd_report(args) -> int:
     from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
-        path = render_report(con, args.out, args.run)
+        if args.flagged_sites < 0 or args.influential_sites < 0:
+            raise UsageError("--flagged-sites and --influential-sites must be 0 or more")
+        path = render_report(con, args.out, args.run, max_flagged=args.flagged_sites,
+                             n_influential=args.influential_sites)
     finally:
         con.close()
     print(f"report: {path}")

@@ -107,7 +107,9 @@ class AlertThresholds(_Cfg):
     fdr_q: float = Field(default=0.05, gt=0, lt=1, description="Benjamini-Hochberg false discovery rate across sites.")
     test_alpha: float = Field(default=0.05, gt=0, lt=1, description="Nominal level of the per-site tests before BH.")
     stale_days: int = Field(default=14, ge=1, description="Days without a batch before a site is stale.")
-    outlier_std_residual: float = Field(default=3.0, gt=0, description="|standardised residual| above which a site is an outlier.")
+    outlier_std_residual: Optional[float] = Field(
+        default=None, gt=0, description="Optional floor: an outlier must also have |externally standardised residual| "
+                                        "above this (off by default; the rule is the BH-adjusted residual test).")
     min_arm_size: int = Field(default=2, ge=1)
 
 

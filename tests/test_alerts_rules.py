@@ -241,17 +241,7 @@ def test_stale_sites_including_registry_sites_without_data():
     assert out["Z"]["value"] is None and "No records" in out["Z"]["message"]
 
 
-def test_outlier_site_by_prediction_interval_or_standardised_residual():
-    site_rows = [site_row("A", cace=5.0), site_row("B", cace=30.0), site_row("C", cace=6.0),
-                 site_row("X", cace=40.0, pooled=False)]
-    pooled = [{"outcome": OUTCOME, "quantity": "cace", "method": "reml", "group_field": None,
-               "pi_low": 0.0, "pi_high": 12.0}]
-    influence = [{"outcome": OUTCOME, "quantity": "cace", "method": "reml", "site_id": s, "std_residual": r}
-                 for s, r in (("A", -0.5), ("B", 2.0), ("C", -3.5))]
-    out = by_rule(run(balanced_counts(["A", "B", "C", "X"]), site_rows, pooled, influence), "outlier_site")
-    assert set(out) == {"B", "C"}                 # B outside the interval; C |residual| 3.5 > 3; X not pooled
-    assert out["C"]["value"] == -3.5 and out["C"]["threshold"] == 3.0
-    assert out["B"]["severity"] == "info"
+# outlier_site: tests/test_alerts_outlier.py
 
 
 # ----------------------------------------------------------------------------- lifecycle

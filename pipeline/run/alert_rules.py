@@ -28,9 +28,10 @@ rule                            severity  raised when
                                           sites) at ``fdr_q``
 ``stale_site``                  warning   latest record more than ``stale_days`` before the
                                           cutoff, or a registry site with no record at all
-``outlier_site``                info      pooled site's CACE outside the REML prediction
-                                          interval, or its \\|standardised residual\\| above
-                                          ``outlier_std_residual``
+``outlier_site``                info      pooled site's CACE far from the other sites given
+                                          its own SE: two-sided test of the externally
+                                          standardised residual (Viechtbauer & Cheung 2010),
+                                          BH-adjusted across pooled sites, at ``fdr_q``
 ==============================  ========  ==================================================
 
 Severity: ``critical`` when the randomisation or the instrument itself looks
@@ -41,7 +42,7 @@ that is simply different (worth a look, not an error).
 Multiple testing: Benjamini-Hochberg control of the false discovery rate at
 ``fdr_q`` is applied across sites within each test-based rule that runs one
 test per site at the conventional level -- ``negative_first_stage``,
-``first_stage_decline`` and ``differential_missing_outcomes``.  Their
+``first_stage_decline``, ``differential_missing_outcomes`` and ``outlier_site``.  Their
 ``p_value`` column holds the BH-adjusted p-value.  The sample-ratio check
 uses no BH: its threshold (default 0.001) is already strict, chosen as in
 practice (common practice) for a check that is run on every site at every
@@ -49,10 +50,10 @@ run.  Other rules compare a statistic with a threshold and have no p-value.
 
 Columns: for threshold rules ``value`` and ``threshold`` are on the same
 scale (F and ``weak_first_stage_f``; CUSUM and its limit ``h``; days since
-the latest record and ``stale_days``; standardised residual and
-``outlier_std_residual``).  For test rules ``value`` is the estimated
-quantity (complier share, decline in first stage, treated share of
-assignments, difference in missing shares) and ``threshold`` the level its
+the latest record and ``stale_days``).  For test rules ``value`` is the
+estimated quantity (complier share, decline in first stage, treated share of
+assignments, difference in missing shares; for ``outlier_site`` the
+externally standardised residual) and ``threshold`` the level its
 (adjusted) p-value is compared with.
 
 Lifecycle
@@ -96,6 +97,7 @@ import pandas as pd
 from scipy import stats
 
 from takeup.pipeline.stats import significance
+from takeup.pipeline.stats.meta_analysis.influence import outlier_test
 from takeup.pipeline.run.pooled_rows import INFLUENCE_METHOD
 from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.run.site_rows import clean
@@ -117,7 +119,8 @@ SEVERITY: dict[str, str] = {
 }
 RULES: tuple[str, ...] = tuple(SEVERITY)
 #: rules whose p-values are Benjamini-Hochberg adjusted across sites
-BH_RULES: tuple[str, ...] = ("negative_first_stage", "first_stage_decline", "differential_missing_outcomes")
+BH_RULES: tuple[str, ...] = ("negative_first_stage", "first_stage_decline", "differential_missing_outcomes",
+                             "outlier_site")
 _SEVERITY_ORDER = {"critical": 0, "warning": 1, "info": 2}
 _ACTIVE = ("new", "ongoing")
 
@@ -391,37 +394,36 @@ def _stale(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
     return out
 
 
-def _outliers(rows: pd.DataFrame, outcome: str, pooled_rows: list[dict], influence_rows: list[dict],
-              a) -> list[dict]:
-    reml = [r for r in pooled_rows if r.get("outcome") == outcome and r.get("quantity") == "cace"
-            and r.get("method") == INFLUENCE_METHOD and r.get("group_field") is None]
-    pi_low = clean(reml[0].get("pi_low")) if reml else None
-    pi_high = clean(reml[0].get("pi_high")) if reml else None
-    resid_map = {r["site_id"]: clean(r.get("std_residual")) for r in influence_rows
-                 if r.get("outcome") == outcome and r.get("quantity") == "cace"
-                 and r.get("method") == INFLUENCE_METHOD}
-    resid = pd.to_numeric(rows["site_id"].map(resid_map), errors="coerce").to_numpy(dtype=float)
-    included = rows["included_in_pool"].fillna(False).astype(bool).to_numpy()
-    cace = _float(rows["cace"])
-    has_pi = pi_low is not None and pi_high is not None
-    lo = pi_low if has_pi else -np.inf
-    hi = pi_high if has_pi else np.inf
-    outside = np.isfinite(cace) & ((cace < lo) | (cace > hi))
-    big = np.isfinite(resid) & (np.abs(resid) > a.outlier_std_residual)
-    hit = included & np.isfinite(cace) & (outside | big)
-    pi_txt = (f"the REML prediction interval for a new site is [{pi_low:.2f}, {pi_high:.2f}]" if has_pi
-              else "no prediction interval is available")
+def _outliers(rows: pd.DataFrame, outcome: str, influence_rows: list[dict], a) -> list[dict]:
+    """Pooled sites whose CACE is far from the other sites' given its own SE (BH across sites)."""
+    inf = pd.DataFrame([r for r in influence_rows if r.get("outcome") == outcome and r.get("quantity") == "cace"
+                        and r.get("method") == INFLUENCE_METHOD])
+    if inf.empty:
+        return []
+    inf = inf.drop_duplicates("site_id").set_index("site_id")
+    pooled_sites = rows.loc[rows["included_in_pool"].fillna(False).astype(bool), "site_id"]
+    inf = inf.reindex([s for s in pooled_sites if s in inf.index])
+    if inf.empty:
+        return []
+    se = _float(inf["se"])
+    test = outlier_test(_float(inf["estimate"]), se**2, _float(inf["loo_estimate"]), _float(inf["loo_se"]),
+                        _float(inf["loo_tau2"]), level=1.0 - a.test_alpha)
+    p_adj = _bh(test.p_value)
+    hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
+    if a.outlier_std_residual is not None:
+        hit &= np.abs(test.std_residual) > a.outlier_std_residual
     out = []
     for i in np.flatnonzero(hit):  # one message per raised alert
-        r = resid[i]
-        if np.isfinite(r):
-            value, threshold, r_txt = r, a.outlier_std_residual, f"standardised residual {r:.1f}"
-        else:
-            value, threshold, r_txt = cace[i], (lo if cace[i] < lo else hi), "no standardised residual"
+        y, r = float(inf["estimate"].iloc[i]), float(test.std_residual[i])
+        floor = (f"; |residual| above {a.outlier_std_residual:g}" if a.outlier_std_residual is not None else "")
         out.append(_alert(
-            "outlier_site", rows.at[i, "site_id"], outcome, value, threshold, None,
-            f"Site CACE {cace[i]:.2f} differs from the other sites: {pi_txt}; {r_txt} (limit "
-            f"{a.outlier_std_residual:g}). The programme may work differently here; check before pooling."))
+            "outlier_site", str(inf.index[i]), outcome, r, a.fdr_q, p_adj[i],
+            f"Site CACE {y:.2f} (SE {se[i]:.2f}) is {'above' if r > 0 else 'below'} what the other sites lead "
+            f"one to expect for this site's estimate: {100 * test.level:.0f}% reference range "
+            f"[{test.ref_low[i]:.2f}, {test.ref_high[i]:.2f}] (pooled REML estimate without this site, its "
+            f"tau2 and the site's own SE); externally standardised residual {r:.1f}, BH-adjusted p = "
+            f"{_p(p_adj[i])} at q = {a.fdr_q:g}{floor}. The programme may work differently here; check before "
+            f"pooling."))
     return out
 
 
@@ -442,7 +444,7 @@ def evaluate_rules(inputs: RunInputs, ctx: RunContext, site_rows: list[dict], po
         found += _negative_first_stage(rows, outcome, a)
         found += _weak_first_stage(rows, outcome, a)
         found += _differential_missing(rows, outcome, a)
-        found += _outliers(rows, outcome, pooled_rows, influence_rows, a)
+        found += _outliers(rows, outcome, influence_rows, a)
     found += _sample_ratio(inputs, ctx, a)
     found += _first_stage_decline(inputs, a)
     found += _drift(drift)

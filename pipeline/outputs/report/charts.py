@@ -36,7 +36,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch, Polygon
 from matplotlib.ticker import PercentFormatter
 
-__all__ = ["OKABE_ITO", "forest_figure", "uptake_figure", "figure_svg", "format_number", "plain_text"]
+__all__ = ["OKABE_ITO", "forest_figure", "funnel_figure", "uptake_figure", "figure_svg", "format_number", "plain_text"]
 
 #: Okabe-Ito palette
 OKABE_ITO: dict[str, str] = {
@@ -407,3 +407,92 @@ def figure_svg(fig: Figure, prefix: str, label: str) -> str:
     svg = _URL.sub(lambda m: f"url(#{prefix}-{m.group(1)})", svg)
     svg = svg.replace("<svg ", f'<svg role="img" aria-label="{html.escape(label, quote=True)}" ', 1)
     return svg
+
+
+def funnel_figure(sites: pd.DataFrame, headline: Mapping[str, Any] | None, flagged: Sequence[str] = (),
+                  outcome: str | None = None, level: float = 0.95) -> Figure:
+    """Funnel plot of every pooled site's CACE against its standard error, in one figure.
+
+    Parameters
+    ----------
+    sites : pandas.DataFrame
+        ``site_estimates`` rows (site_id, cace, cace_se, included_in_pool); sites not in
+        the pool, or without an estimate and SE, are not drawn.
+    headline : mapping or None
+        The pooled CACE row (estimate, tau2, method): the vertical line, and the centre of
+        the pseudo-confidence region ``estimate -/+ z * sqrt(se² + tau2)``.
+    flagged : sequence of str
+        Sites drawn as labelled vermillion triangles (the outlier alerts).
+    outcome : str, optional
+        Outcome name for the axis label.
+    level : float
+        Coverage of the pseudo-confidence region.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Notes
+    -----
+    The standard error runs downwards from zero, so precise sites sit at the top
+    (Sterne & Egger 2001).  With tau2 = 0 the region is the usual funnel
+    ``mu -/+ z * se``; with tau2 > 0 it widens by the between-site variance, which is
+    what a site's estimate is expected to vary by under the random-effects model.  One
+    scatter call draws all sites (one SVG path reused per point).
+
+    References
+    ----------
+    Sterne, J. A. C. and Egger, M. (2001). Funnel plots for detecting bias in
+    meta-analysis: guidelines on choice of axis. Journal of Clinical Epidemiology
+    54(10), 1046-1055.
+    """
+    est, se = _col(sites, "cace"), _col(sites, "cace_se")
+    pooled = sites["included_in_pool"].fillna(False).astype(bool).to_numpy()
+    ok = pooled & np.isfinite(est) & np.isfinite(se) & (se > 0)
+    ids = sites["site_id"].astype(str).to_numpy()
+    hit = ok & np.isin(ids, np.asarray(list(flagged), dtype=object))
+    fig = Figure(figsize=(10.5, 5.6), layout="constrained")
+    ax = fig.add_subplot()
+    z = float(_norm_ppf(0.5 + level / 2.0))
+    se_max = float(np.nanmax(se[ok])) * 1.05 if ok.any() else 1.0
+    mu = tau2 = None
+    if headline is not None and headline.get("estimate") is not None:
+        mu = float(headline["estimate"])
+        tau2 = float(headline.get("tau2") or 0.0)
+        grid = np.linspace(0.0, se_max, 60)
+        half = z * np.sqrt(grid**2 + tau2)
+        ax.fill_betweenx(grid, mu - half, mu + half, color=OKABE_ITO["sky_blue"], alpha=0.18, linewidth=0)
+        ax.plot(mu - half, grid, color=OKABE_ITO["blue"], linestyle="--", linewidth=1.2)
+        ax.plot(mu + half, grid, color=OKABE_ITO["blue"], linestyle="--", linewidth=1.2)
+        ax.axvline(mu, color=OKABE_ITO["blue"], linewidth=2.0)
+    ax.axvline(0.0, color=_GREY, linestyle=":", linewidth=1)
+    ax.scatter(est[ok & ~hit], se[ok & ~hit], s=14, color=OKABE_ITO["black"], alpha=0.55, linewidths=0)
+    if hit.any():
+        ax.scatter(est[hit], se[hit], s=70, marker="^", color=OKABE_ITO["vermillion"], edgecolors="black",
+                   linewidths=0.8, zorder=5)
+        for x, y, s in zip(est[hit][:25], se[hit][:25], ids[hit][:25]):  # labels for at most 25 sites
+            ax.annotate(plain_text(s), (x, y), xytext=(6, 2), textcoords="offset points", fontsize=8,
+                        color=OKABE_ITO["vermillion"])
+    ax.set_ylim(se_max, 0.0)
+    what = plain_text(outcome) if outcome else "outcome"
+    ax.set_xlabel(f"Site CACE on {what} (outcome units)")
+    ax.set_ylabel("standard error of the site CACE (precise sites at the top)")
+    for spine in ("top", "right"):
+        ax.spines[spine].set_visible(False)
+    pct = f"{level:.0%}"
+    handles = [Line2D([], [], color=OKABE_ITO["black"], marker="o", linestyle="none", alpha=0.6,
+                      label=f"pooled site ({int(ok.sum()):,})")]
+    if hit.any():
+        handles.append(Line2D([], [], color=OKABE_ITO["vermillion"], marker="^", linestyle="none",
+                              markeredgecolor="black", label=f"outlier alert ({int(hit.sum())})"))
+    if mu is not None:
+        handles += [Line2D([], [], color=OKABE_ITO["blue"], linewidth=2, label=f"pooled CACE {format_number(mu)}"),
+                    Line2D([], [], color=OKABE_ITO["blue"], linestyle="--",
+                           label=f"{pct} of site estimates expected inside (\u03c4\u00b2 = {format_number(tau2, 3)})")]
+    ax.legend(handles=handles, loc="lower left", frameon=False, fontsize=9)
+    return fig
+
+
+def _norm_ppf(p: float) -> float:
+    from scipy import stats
+    return float(stats.norm.ppf(p))

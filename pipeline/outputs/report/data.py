@@ -10,7 +10,7 @@ from __future__ import annotations
 from takeup.pipeline.errors import ReportError  # noqa: F401  (re-exported)
 
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import date, datetime
 from typing import Any
 
@@ -56,6 +56,7 @@ class ReportData:
     batches: pd.DataFrame
     quarantine_by_reason: pd.DataFrame
     other_outcomes: tuple[str, ...]
+    influence: pd.DataFrame = field(default_factory=pd.DataFrame)  # site_influence, primary outcome, CACE
 
 
 def _df(con: duckdb.DuckDBPyConnection, sql: str, params: list[Any]) -> pd.DataFrame:
@@ -167,6 +168,8 @@ def load_report_data(con: duckdb.DuckDBPyConnection, run_id: str | None = None) 
 
     subgroup = _df(con, "SELECT * FROM subgroup_tests WHERE run_id = ? AND outcome = ? "
                         "ORDER BY quantity, group_field, method", [rid, primary])
+    influence = _df(con, "SELECT * FROM site_influence WHERE run_id = ? AND outcome = ? AND quantity = 'cace' "
+                         "ORDER BY site_id", [rid, primary])
     trends = _df(con, "SELECT * FROM uptake_trends WHERE run_id = ? AND basis = 'cohort' "
                       "ORDER BY site_id, arm, period_start", [rid])
     alerts = _df(con, "SELECT a.*, CAST(r.as_of AS VARCHAR) AS first_seen_as_of FROM alerts a "
@@ -184,7 +187,7 @@ def load_report_data(con: duckdb.DuckDBPyConnection, run_id: str | None = None) 
         run=run, study_id=study_id, primary_outcome=primary, weak_f=weak_f,
         site_estimates=sites, pooled=pooled, headline=headline, subgroup_tests=subgroup,
         trends=trends, alerts=alerts, batches=batches, quarantine_by_reason=quarantine,
-        other_outcomes=tuple(o for o in outcomes if o != primary),
+        other_outcomes=tuple(o for o in outcomes if o != primary), influence=influence,
     )
 
 

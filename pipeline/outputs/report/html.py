@@ -1,23 +1,26 @@
 """The self-contained HTML report of one monitoring run.
 
 One file, no network: the CSS is inline, the charts are inline SVG, there
-are no scripts, fonts or images to fetch.  Every value read from the
+are no fonts or images to fetch; up to 40 sites there is no script, above it one
+small inline script sorts and filters the tables (:mod:`.many_sites`).  Every value read from the
 database is passed through :func:`html.escape` before it is written.
 """
 
 from __future__ import annotations
 
 import html
-import math
 import os
 import secrets
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any
 
 import duckdb
 import pandas as pd
 
-from takeup.pipeline.outputs.report.charts import figure_svg, forest_figure, format_number, uptake_figure
+from takeup.pipeline.outputs.report.cells import esc as _e, integer as _int, interval as _interval, num as _num
+from takeup.pipeline.outputs.report.cells import pct as _pct, pval as _p, records as _records, table as _table
+from takeup.pipeline.outputs.report import many_sites
+from takeup.pipeline.outputs.report.charts import figure_svg, forest_figure, uptake_figure
 from takeup.pipeline.outputs.report.data import ACTIVE_STATUSES, ReportData, as_text_date, is_uptake_rule, load_report_data
 
 __all__ = ["render_report", "report_html"]
@@ -61,71 +64,6 @@ section#cautions { background: var(--band); padding: 4px 18px 12px; margin-top: 
 section#cautions h2 { border-bottom-color: #bbb; }
 footer { margin-top: 30px; font-size: .8rem; color: var(--muted); }
 """
-
-
-def _e(value: Any) -> str:
-    """Escaped text of a database value ('' for null)."""
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return ""
-    try:
-        if pd.isna(value):
-            return ""
-    except (TypeError, ValueError):
-        pass
-    return html.escape(str(value), quote=True)
-
-
-def _num(value: Any, digits: int = 2) -> str:
-    return html.escape(format_number(value, digits))
-
-
-def _p(value: Any) -> str:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return "n/a"
-    if math.isnan(v):
-        return "n/a"
-    return "&lt;0.001" if v < 0.001 else f"{v:.3f}"
-
-
-def _pct(value: Any, digits: int = 0) -> str:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return "n/a"
-    return "n/a" if math.isnan(v) else f"{100 * v:.{digits}f}%"
-
-
-def _int(value: Any) -> str:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return "n/a"
-    return "n/a" if math.isnan(v) else f"{int(v):,}"
-
-
-def _interval(low: Any, high: Any) -> str:
-    if format_number(low) == "n/a" and format_number(high) == "n/a":
-        return "n/a"
-    return f"[{_num(low)}, {_num(high)}]"
-
-
-def _table(headers: Sequence[tuple[str, bool]], rows: Iterable[Sequence[str]], table_id: str | None = None,
-           empty: str | None = None) -> str:
-    """HTML table from already-escaped cells; headers are (label, numeric)."""
-    attr = f' id="{table_id}"' if table_id else ""
-    head = "".join(f'<th class="num">{h}</th>' if num else f"<th>{h}</th>" for h, num in headers)
-    # one <tr> per row: string assembly of already-computed values
-    body = ["<tr>" + "".join(f'<td class="num">{c}</td>' if num else f"<td>{c}</td>"
-                             for c, (_, num) in zip(row, headers)) + "</tr>" for row in rows]
-    if not body and empty:
-        body = [f'<tr><td colspan="{len(headers)}" class="empty">{empty}</td></tr>']
-    return f"<table{attr}><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
-
-
-def _records(df: pd.DataFrame) -> list[dict[str, Any]]:
-    return [] if df is None or df.empty else df.astype(object).where(df.notna(), None).to_dict("records")
 
 
 # --------------------------------------------------------------------------
@@ -387,19 +325,44 @@ rules and local regulation, which take precedence over anything suggested here.<
 </section>"""
 
 
-def report_html(d: ReportData) -> str:
-    """The complete HTML document for ``d``."""
+def report_html(d: ReportData, max_flagged: int = 30, n_influential: int = 10) -> str:
+    """The complete HTML document for ``d``.
+
+    Up to :data:`~takeup.pipeline.outputs.report.many_sites.MANY_SITES` sites the page has
+    no script: forest plot and trend panels of every site.  Above it, the many-site layout
+    of :mod:`~takeup.pipeline.outputs.report.many_sites` (summary first, one funnel plot,
+    forest and trends for at most ``max_flagged`` flagged plus ``n_influential`` most
+    influential sites, a sortable and filterable table of every site with a small inline
+    script).
+    """
     title = f"Take-up monitoring report: {_e(d.study_id)}, run {_e(d.run.get('run_id'))}"
-    body = "".join([_header(d), _how_to_read(d), _alerts(d), _forest(d), _heterogeneity(d), _trends(d),
-                    _data_quality(d), _cautions()])
+    css, script = _CSS, ""
+    if len(d.site_estimates) > many_sites.MANY_SITES:
+        choice = many_sites.choose_detail_sites(d, max_flagged=max_flagged, n_influential=n_influential)
+        alerts = _alerts(d).replace('<table id="alerts-table">', '<div class="filters" data-filter-for='
+                                    '"alerts-table"><label>Find <input type="search" id="alert-filter" '
+                                    'placeholder="rule, site, status…"></label><span class="count"></span></div>'
+                                    '<div class="scroll"><table id="alerts-table" data-sortable>', 1).replace(
+            "</table></section>", "</table></div></section>", 1)
+        body = "".join([_header(d), _how_to_read(d), many_sites.summary_section(d), alerts,
+                        many_sites.site_effects_section(d, choice), _heterogeneity(d),
+                        many_sites.trends_section(d, choice), _data_quality(d), _cautions()])
+        css += many_sites.TABLE_CSS
+        script = f"<script>{many_sites.TABLE_SCRIPT}</script>"
+        note = "The only script is the inline one that sorts and filters the tables; "
+    else:
+        body = "".join([_header(d), _how_to_read(d), _alerts(d), _forest(d), _heterogeneity(d), _trends(d),
+                        _data_quality(d), _cautions()])
+        note = ""
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
-            f"<title>{title}</title><style>{_CSS}</style></head><body><main>{body}"
+            f"<title>{title}</title><style>{css}</style></head><body><main>{body}"
             f"<footer>Produced by takeup {_e(d.run.get('code_version'))} from run {_e(d.run.get('run_id'))}. "
-            "This file is self-contained and makes no network requests.</footer></main></body></html>\n")
+            f"{note}This file is self-contained and makes no network requests.</footer></main>{script}</body></html>\n")
 
 
-def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | None = None) -> Path:
+def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | None = None,
+                  max_flagged: int = 30, n_influential: int = 10) -> Path:
     """Write the self-contained HTML report of one run.
 
     Parameters
@@ -412,6 +375,10 @@ def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | 
     run_id : str, optional
         Run to report; default the latest finished run (status ``ok`` or
         ``partial``).
+    max_flagged, n_influential : int
+        Many-site layout only (more than 40 sites): the forest plot and trend panels show
+        at most ``max_flagged`` sites with an active alert and the ``n_influential``
+        other sites whose removal moves the pooled CACE most.
 
     Returns
     -------
@@ -436,7 +403,7 @@ def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | 
     in a meta-analysis. Statistics in Medicine 21(11), 1539-1558.
     """
     data = load_report_data(con, run_id)
-    text = report_html(data)
+    text = report_html(data, max_flagged=max_flagged, n_influential=n_influential)
     out = Path(out_path)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.with_name(f".{out.name}.{secrets.token_hex(6)}.tmp")

@@ -5,6 +5,8 @@
 and computes empirical-Bayes (BLUP) site effects shrunk toward the pooled
 estimate.  :func:`empirical_bayes` does the shrinkage alone, for callers that
 already hold a :class:`~takeup.pipeline.stats.meta_analysis.meta.MetaResult`.
+:func:`outlier_test` turns the leave-one-out quantities into a two-sided p-value
+and a reference range per site (the ``outlier_site`` alert).
 """
 
 from __future__ import annotations
@@ -15,7 +17,7 @@ import numpy as np
 
 from takeup.pipeline.stats.meta_analysis.meta import MetaResult, clean_inputs, combine
 
-__all__ = ["InfluenceResult", "site_influence", "empirical_bayes"]
+__all__ = ["InfluenceResult", "site_influence", "empirical_bayes", "OutlierTest", "outlier_test"]
 
 
 def _readonly(a) -> np.ndarray:
@@ -178,3 +180,86 @@ def site_influence(effects, variances, method: str = "reml") -> InfluenceResult:
         std_residual=_readonly(std_res), eb_estimate=eb_est, eb_se=eb_se,
         note="; ".join(notes),
     )
+
+
+@dataclass(frozen=True)
+class OutlierTest:
+    """Per-site test of "this site's estimate is consistent with the other sites".
+
+    Attributes
+    ----------
+    std_residual : ndarray
+        Externally standardised residual (as in :class:`InfluenceResult`).
+    p_value : ndarray
+        Two-sided p-value ``2 * (1 - Phi(|r|))`` of the residual (NaN where
+        the residual is undefined).
+    ref_low, ref_high : ndarray
+        Range in which the site's *estimate* is expected at ``level`` given
+        the other sites: ``mu_(-i) -/+ z * sqrt(v_i + tau2_(-i) + se_(-i)²)``.
+        It contains the estimate exactly when the raw p-value is above
+        ``1 - level``.
+    level : float
+        Coverage of the reference range.
+    """
+
+    std_residual: np.ndarray
+    p_value: np.ndarray
+    ref_low: np.ndarray
+    ref_high: np.ndarray
+    level: float
+
+
+def outlier_test(effects, variances, loo_estimate, loo_se, loo_tau2, level: float = 0.95) -> OutlierTest:
+    """Two-sided test of each site against the fit without it (vectorised over sites).
+
+    Parameters
+    ----------
+    effects, variances : array_like
+        Site estimates ``y_i`` and their sampling variances ``v_i``.
+    loo_estimate, loo_se, loo_tau2 : array_like
+        Leave-one-out pooled estimate, its SE and tau2 (from
+        :func:`site_influence` or the ``site_influence`` table).
+    level : float
+        Coverage of the reference range (the p-values do not depend on it).
+
+    Returns
+    -------
+    OutlierTest
+
+    Notes
+    -----
+    Under the random-effects model, the estimate of a new site is
+    ``y_i ~ N(mu, tau2 + v_i)``; with ``mu`` and ``tau2`` estimated from the
+    other ``k - 1`` sites, ``y_i - mu_(-i)`` has variance
+    ``v_i + tau2 + Var(mu_(-i))``, so the externally standardised residual
+    ``r_i = (y_i - mu_(-i)) / sqrt(v_i + tau2_(-i) + se_(-i)²)`` is
+    approximately standard normal (Viechtbauer & Cheung 2010, section 3.2).
+    The site's own sampling error ``v_i`` is part of the denominator: this is
+    what separates an outlying *estimate* from a prediction interval, which
+    describes the spread of true effects only.  The normal reference
+    ignores the uncertainty of ``tau2_(-i)``; with few sites it is slightly
+    liberal, with REML's truncation at zero it is slightly conservative.
+
+    References
+    ----------
+    Viechtbauer, W. and Cheung, M. W.-L. (2010). Outlier and influence
+    diagnostics for meta-analysis. Research Synthesis Methods, 1(2), 112-125.
+    """
+    from scipy import stats
+
+    y = np.atleast_1d(np.asarray(effects, dtype=float))
+    v = np.atleast_1d(np.asarray(variances, dtype=float))
+    mu = np.atleast_1d(np.asarray(loo_estimate, dtype=float))
+    se = np.atleast_1d(np.asarray(loo_se, dtype=float))
+    t2 = np.atleast_1d(np.asarray(loo_tau2, dtype=float))
+    with np.errstate(all="ignore"):
+        denom = v + t2 + se**2
+        ok = np.isfinite(y) & np.isfinite(denom) & (denom > 0) & np.isfinite(mu)
+        sd = np.where(ok, np.sqrt(np.where(ok, denom, 1.0)), np.nan)
+        r = np.where(ok, (y - mu) / sd, np.nan)
+        p = np.where(ok, 2.0 * stats.norm.sf(np.abs(r)), np.nan)
+        z = float(stats.norm.ppf(0.5 + level / 2.0))
+        lo = np.where(ok, mu - z * sd, np.nan)
+        hi = np.where(ok, mu + z * sd, np.nan)
+    return OutlierTest(std_residual=_readonly(r), p_value=_readonly(p), ref_low=_readonly(lo),
+                       ref_high=_readonly(hi), level=float(level))
