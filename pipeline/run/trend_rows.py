@@ -38,7 +38,10 @@ On the cohort basis each site x arm gets a one-sided Bernoulli CUSUM
 * treatment arm, **downward** chart (offers not delivered), odds divided by
   ``alerts.drift_odds_ratio``.
 
-The in-control rate ``p0`` is the pooled uptake of the first
+The charts use only cohorts whose uptake window has closed by the cutoff
+(``trends.uptake_window_days`` after the period's last day,
+:func:`closed_cohort_counts`): a cohort still being reported would look like
+low uptake.  The in-control rate ``p0`` is the pooled uptake of the first
 ``alerts.drift_baseline_periods`` periods of that site x arm that have uptake
 reports (:func:`~takeup.pipeline.stats.drift.baseline.baseline_rate`, with its
 continuity floor/ceiling ``[0.5/N, 1 - 0.5/N]``).  The chart runs over the
@@ -74,7 +77,8 @@ from takeup.pipeline.stats.drift.shrinkage import shrink_rates
 from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.run.site_rows import clean
 
-__all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "ARMS_BY_Z", "DESIGN_REL_TOL"]
+__all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "closed_cohort_counts", "ARMS_BY_Z",
+           "DESIGN_REL_TOL"]
 
 #: arm label by assignment indicator z (0 control, 1 treatment)
 ARMS_BY_Z: tuple[str, str] = ("control", "treatment")
@@ -429,6 +433,19 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
     )
 
 
+def closed_cohort_counts(cohort: pd.DataFrame, as_of: date, period_days: int, uptake_window_days: int
+                         ) -> pd.DataFrame:
+    """Cohort rows whose uptake window has closed by ``as_of`` (last assignment day + window <= as_of).
+
+    The drift charts run on these only: a cohort still being reported looks like low uptake.
+    """
+    f = _normalise(cohort)
+    if f.empty:
+        return f
+    last_due = pd.to_datetime(f["period_start"]) + pd.Timedelta(days=period_days - 1 + uptake_window_days)
+    return f[(last_due <= pd.Timestamp(as_of)).to_numpy()].reset_index(drop=True)
+
+
 def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], DriftResult]:
     """``uptake_trends`` rows (cohort and calendar bases) and the drift charts.
 
@@ -454,17 +471,22 @@ def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], Drif
        Quality Technology* 31(1), 87-108.
     """
     a = ctx.config.alerts
-    drift = detect_drift(inputs.cohort_counts, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
+    closed = closed_cohort_counts(inputs.cohort_counts, ctx.as_of, ctx.config.trends.period_days,
+                                  ctx.config.trends.uptake_window_days)
+    drift = detect_drift(closed, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
                          baseline=a.drift_baseline)
     grid = _grid(_normalise(inputs.cohort_counts))
     cv = cl = None
     if len(grid) and len(drift.site_id):
         s_pos = {s: i for i, s in enumerate(drift.site_id[::2])}
         p_pos = {p: j for j, p in enumerate(drift.periods)}
-        si = grid["site_id"].map(s_pos).to_numpy() * 2 + grid["z"].to_numpy()
-        pj = grid["period_start"].map(p_pos).to_numpy()
-        cv = np.asarray(drift.path)[si, pj]
-        cl = np.where(np.isfinite(cv), np.asarray(drift.h)[si], np.nan)
+        si = grid["site_id"].map(s_pos)
+        pj = grid["period_start"].map(p_pos)
+        known = (si.notna() & pj.notna()).to_numpy()
+        si_i = np.where(known, si.fillna(0).to_numpy(int) * 2 + grid["z"].to_numpy(), 0)
+        pj_i = np.where(known, pj.fillna(0).to_numpy(int), 0)
+        cv = np.where(known, np.asarray(drift.path)[si_i, pj_i], np.nan)
+        cl = np.where(np.isfinite(cv), np.asarray(drift.h)[si_i], np.nan)
     _, cohort_rows = trend_rows(inputs.cohort_counts, "cohort", ctx.run_id, cv, cl)
     _, calendar_rows = trend_rows(inputs.calendar_counts, "calendar", ctx.run_id)
     return cohort_rows + calendar_rows, drift
