@@ -103,6 +103,10 @@ class AlertThresholds(_Cfg):
     drift_baseline: Literal["shrunk", "site"] = Field(
         default="shrunk", description="In-control level: each site's baseline shrunk toward the study-wide baseline "
                                       "of the arm (empirical Bayes), or the site's own baseline.")
+    drift_calibration: Literal["estimated_level", "known_level"] = Field(
+        default="estimated_level", description="Decision limit of the drift charts: calibrated so that the expected "
+                                               "false-alarm rate, allowing for the estimation error of the in-control "
+                                               "level, is 1/drift_arl0 (default); or designed as if the level were known.")
     drift_odds_ratio: float = Field(default=3.0, gt=1.0, description="Shift in the odds of uptake the CUSUM is tuned to detect.")
     drift_arl0: float = Field(default=2000.0, gt=10.0, description="In-control average run length, in participants.")
     srm_p_value: float = Field(default=0.001, gt=0, lt=1, description="Sample-ratio mismatch alarm level (common practice).")
