@@ -135,7 +135,7 @@ class PooledEstimateRow(_Result):
     se: F = Field(default=None, description="Its standard error.")
     ci_low: F = Field(default=None, description="Confidence interval, lower end (z; t for *_hksj).")
     ci_high: F = Field(default=None, description="Confidence interval, upper end.")
-    pi_low: F = Field(default=None, description="Prediction interval for a new site (t, k-2 df), lower end.")
+    pi_low: F = Field(default=None, description="Prediction interval for a new site: t (k-2 df) with sqrt(tau2 + se^2), se the conventional SE of the method (also on *_hksj rows); on fixed rows (tau2 = 0) a t confidence interval, as the note says. Lower end.")
     pi_high: F = Field(default=None, description="Prediction interval, upper end.")
     tau2: F = Field(default=None, description="Between-site variance (clipped at 0).")
     tau2_ci_low: F = Field(default=None, description="Q-profile interval for tau2, lower end.")

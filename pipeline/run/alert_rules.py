@@ -10,22 +10,28 @@ Rules
 ==============================  ========  ==================================================
 rule                            severity  raised when
 ==============================  ========  ==================================================
-``negative_first_stage``        critical  one-sided test of complier share < 0 (z = share/SE,
-                                          BH-adjusted across sites) at ``fdr_q``; or the
-                                          share is negative with first-stage F at least
-                                          ``negative_first_stage_min_f``
+``negative_first_stage``        critical  one-sided test of complier share < 0 (share/SE, normal;
+                                          t(G-1) under CR1), BH-adjusted across the tested sites,
+                                          at ``fdr_q``; ``negative_first_stage_min_f`` (default 0)
+                                          only restricts which sites are tested
 ``sample_ratio_mismatch``       critical  Pearson chi-square of the arm counts (everyone
-                                          assigned) against the site's designed allocation
-                                          has p < ``srm_p_value``
+                                          assigned; clusters under cluster randomisation)
+                                          against the site's designed allocation has
+                                          p < ``srm_p_value``
 ``weak_first_stage``            warning   first-stage F < ``weak_first_stage_f``
 ``first_stage_decline``         warning   first stage of the latest ``first_stage_decline_periods``
-                                          cohorts below that of earlier cohorts (one-sided
-                                          test, BH-adjusted across sites) at ``fdr_q``
+                                          closed cohorts below that of earlier cohorts (one-sided
+                                          test, cluster totals under cluster randomisation,
+                                          BH-adjusted across sites) at ``fdr_q``
 ``control_uptake_drift``        warning   upward Bernoulli CUSUM of control uptake signalled
 ``treatment_uptake_drift``      warning   downward Bernoulli CUSUM of treated uptake signalled
-``differential_missing_outcomes`` warning missing-outcome shares differ between arms
-                                          (two-sided two-proportion z test, BH-adjusted across
-                                          sites) at ``fdr_q``
+``differential_missing_outcomes`` warning missing-outcome shares among participants due an
+                                          outcome differ between arms (two-sided two-proportion
+                                          z test; cluster totals under cluster randomisation;
+                                          BH-adjusted across sites) at ``fdr_q``
+``missing_uptake_reports``      warning   among participants due an uptake report, the share
+                                          without one exceeds ``missing_uptake_share`` in an arm,
+                                          or the shares differ between arms (two-sided test, BH)
 ``stale_site``                  warning   latest record more than ``stale_days`` before the
                                           cutoff, or a registry site with no record at all
 ``outlier_site``                info      pooled site's CACE outside the REML prediction
@@ -41,8 +47,14 @@ that is simply different (worth a look, not an error).
 Multiple testing: Benjamini-Hochberg control of the false discovery rate at
 ``fdr_q`` is applied across sites within each test-based rule that runs one
 test per site at the conventional level -- ``negative_first_stage``,
-``first_stage_decline`` and ``differential_missing_outcomes``.  Their
-``p_value`` column holds the BH-adjusted p-value.  The sample-ratio check
+``first_stage_decline``, ``differential_missing_outcomes`` and
+``missing_uptake_reports``.  Their ``p_value`` column holds the BH-adjusted
+p-value, and it is the value compared with the threshold (no rule raises a
+test-based alert by another route).  Arm-comparison tests run only where each
+arm has at least ``min_arm_size`` participants.  Under cluster randomisation
+every arm comparison is made on the randomised unit: cluster counts for the
+sample-ratio check, cluster totals with CR1 variances for the proportion tests
+(:mod:`takeup.pipeline.stats.significance`).  The sample-ratio check
 uses no BH: its threshold (default 0.001) is already strict, chosen as in
 practice (common practice) for a check that is run on every site at every
 run.  Other rules compare a statistic with a threshold and have no p-value.
@@ -52,8 +64,11 @@ scale (F and ``weak_first_stage_f``; CUSUM and its limit ``h``; days since
 the latest record and ``stale_days``; standardised residual and
 ``outlier_std_residual``).  For test rules ``value`` is the estimated
 quantity (complier share, decline in first stage, treated share of
-assignments, difference in missing shares) and ``threshold`` the level its
-(adjusted) p-value is compared with.
+assignments or clusters, difference in missing shares) and ``threshold`` the
+level its (adjusted) p-value is compared with.  ``missing_uptake_reports``
+raised by its share threshold carries the larger missing share and
+``missing_uptake_share`` (and the BH-adjusted p-value of the difference
+test); raised by the test only, the difference in shares and ``fdr_q``.
 
 Lifecycle
 ---------
