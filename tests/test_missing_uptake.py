@@ -115,6 +115,17 @@ def test_complete_case_equals_iv2sls_and_recovers_truth(tmp_path, key_env, data)
     assert raised == {"S1", "S2", "S3"}                               # 20% > the 10% threshold; CLEAN not
     msg = alerts[(alerts.rule == "missing_uptake_reports") & (alerts.site_id == "S1")].message.iloc[0]
     assert "complete case" in msg and "bounds" in msg
+    # the run summary (printed by `takeup run`) and the report show the missing reports
+    lost_t = int((data.lost & (data.z == 1)).sum())
+    assert summary.missing_uptake and f"{lost_t} of {int((data.z == 1).sum())} treated" in summary.missing_uptake
+    from takeup.pipeline.outputs.report.html import render_report
+    out = tmp_path / "report.html"
+    with duckdb.connect(str(tmp_path / "w.duckdb"), read_only=True) as con:
+        render_report(con, out)
+    html = out.read_text()
+    table = html[html.index('id="missing-uptake-table"'):]
+    table = table[:table.index("</table>")]
+    assert all(s in table for s in ("S1", "S2", "S3")) and "CLEAN" not in table
 
 
 def test_not_taken_up_rule_reproduces_the_old_numbers(tmp_path, key_env, data):
