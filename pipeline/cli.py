@@ -289,6 +289,8 @@ def _print_summary(s) -> None:
     print(f"  rows written: {rows}")
     if s.alerts_by_status:
         print("  alerts: " + ", ".join(f"{v} {k}" for k, v in sorted(s.alerts_by_status.items())))
+    if getattr(s, "missing_uptake", None):
+        print(f"  {s.missing_uptake}")
     total = sum(s.timings.values()) if s.timings else 0.0
     print(f"  compute time {total:.2f} s" + (f"; {s.message}" if s.message else ""))
 

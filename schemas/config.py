@@ -95,22 +95,44 @@ class AlertThresholds(_Cfg):
 
     weak_first_stage_f: float = Field(default=10.0, gt=0, description="Staiger & Stock (1997) rule of thumb.")
     tf_valid_f: float = Field(default=104.7, gt=0, description="Lee et al. (2022): F above which t-ratio 5% tests are valid.")
-    negative_first_stage_min_f: float = Field(default=3.8416, ge=0)
+    negative_first_stage_min_f: float = Field(
+        default=0.0, ge=0, description="Only sites with a first-stage F at least this large are tested for a negative "
+                                       "first stage (a gate on the tested family, never a way around BH); 0 = all.")
     first_stage_decline_periods: int = Field(default=4, ge=1, description="Recent assignment periods compared with earlier ones.")
     drift_baseline_periods: int = Field(default=4, ge=1, description="Periods whose uptake sets the in-control level.")
     drift_baseline: Literal["shrunk", "site"] = Field(
         default="shrunk", description="In-control level: each site's baseline shrunk toward the study-wide baseline "
                                       "of the arm (empirical Bayes), or the site's own baseline.")
+    drift_calibration: Literal["estimated_level", "known_level"] = Field(
+        default="estimated_level", description="Decision limit of the drift charts: calibrated so that the expected "
+                                               "false-alarm rate, allowing for the estimation error of the in-control "
+                                               "level, is 1/drift_arl0 (default); or designed as if the level were known.")
     drift_odds_ratio: float = Field(default=3.0, gt=1.0, description="Shift in the odds of uptake the CUSUM is tuned to detect.")
     drift_arl0: float = Field(default=2000.0, gt=10.0, description="In-control average run length, in participants.")
     srm_p_value: float = Field(default=0.001, gt=0, lt=1, description="Sample-ratio mismatch alarm level (common practice).")
     fdr_q: float = Field(default=0.05, gt=0, lt=1, description="Benjamini-Hochberg false discovery rate across sites.")
-    test_alpha: float = Field(default=0.05, gt=0, lt=1, description="Nominal level of the per-site tests before BH.")
     stale_days: int = Field(default=14, ge=1, description="Days without a batch before a site is stale.")
     outlier_std_residual: Optional[float] = Field(
         default=None, gt=0, description="Optional floor: an outlier must also have |externally standardised residual| "
                                         "above this (off by default; the rule is the BH-adjusted residual test).")
-    min_arm_size: int = Field(default=2, ge=1)
+    min_arm_size: int = Field(default=2, ge=1, description="Per-site arm-comparison tests (missing outcomes, missing "
+                                                          "uptake reports, first-stage decline, negative first stage) "
+                                                          "run only where each arm has at least this many participants.")
+    missing_uptake_share: float = Field(default=0.10, gt=0, lt=1, description="Share of participants due an uptake "
+                                                                             "report without one, in either arm, above "
+                                                                             "which missing_uptake_reports is raised.")
+
+    @model_validator(mode="before")
+    @classmethod
+    def _removed_fields(cls, data: Any) -> Any:
+        # ``test_alpha`` was accepted but never used; configurations stored by earlier versions carry its
+        # default (0.05), which is dropped.  Any other value is refused: per-site tests are controlled by fdr_q.
+        if isinstance(data, dict) and "test_alpha" in data:
+            if data["test_alpha"] != 0.05:
+                raise ValueError("test_alpha was removed (it was never used): per-site tests are controlled by "
+                                 "Benjamini-Hochberg at fdr_q")
+            data = {k: v for k, v in data.items() if k != "test_alpha"}
+        return data
 
 
 class EstimationSettings(_Cfg):
@@ -118,10 +140,18 @@ class EstimationSettings(_Cfg):
     pool_min_first_stage_f: float = Field(default=10.0, ge=0, description="A site enters the CACE pool only above this first-stage F.")
     adjust_covariates: bool = Field(default=False, description="Also fit the covariate-adjusted IV per site.")
     pool_methods: tuple[Literal["fixed", "dl", "reml", "pm"], ...] = ("fixed", "dl", "reml", "pm")
+    min_clusters_per_arm: int = Field(
+        default=3, ge=2, description="Under cluster randomisation, a site with fewer clusters than this in an arm gets "
+                                     "status too_few_clusters (no cluster-robust SEs, intervals or F); see the README "
+                                     "for the coverage measured at 6-40 clusters.")
 
 
 class TrendSettings(_Cfg):
     period_days: int = Field(default=7, ge=1, le=366, description="Length of a trend period in days (7 = weekly).")
+    uptake_window_days: int = Field(
+        default=14, ge=0, le=366, description="Days after assignment by which an uptake report is expected.  Trend and "
+                                              "decline rules use only cohorts whose window has closed by the cutoff, "
+                                              "and missing_uptake_reports counts only participants due a report.")
 
 
 class ScheduleSettings(_Cfg):
@@ -164,6 +194,10 @@ class StudyConfig(_Cfg):
     randomisation_unit: Literal["individual", "cluster"] = "individual"
     uptake_definition: Literal["ever_by_cutoff"] = Field(
         default="ever_by_cutoff", description="Uptake = took up at least once on or before the cutoff.")
+    uptake_missing: Literal["complete_case", "not_taken_up"] = Field(
+        default="complete_case", description="Participants with no uptake report by the cutoff: left out of the uptake "
+                                             "moments (complete case, default), or counted as not taken up (for "
+                                             "programmes that record only positive uptake).")
     allocation: dict[str, float] = Field(default_factory=lambda: {"treatment": 0.5, "control": 0.5})
     outcomes: tuple[OutcomeSpec, ...] = ()
     follow_up: FollowUp = FollowUp()

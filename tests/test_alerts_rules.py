@@ -153,19 +153,40 @@ def test_differential_missing_matches_proportions_ztest_and_fdr_bh():
 
 
 # ----------------------------------------------------------------------------- first stage
-def test_negative_first_stage_one_sided_test_with_bh_and_f_route():
+def test_negative_first_stage_one_sided_test_with_bh_only():
     shares = {"A": (0.6, 0.05), "B": (-0.15, 0.05), "C": (-0.04, 0.05), "D": (0.02, 0.2), "E": (-0.3, 0.12)}
     site_rows = [site_row(s, share=sh, se=se, f=(sh / se) ** 2) for s, (sh, se) in shares.items()]
     out = by_rule(run(balanced_counts(list(shares)), site_rows), "negative_first_stage")
     p_raw = [stats.norm.cdf(sh / se) for sh, se in shares.values()]    # H1: share < 0 (scipy normal cdf)
     reject, adj, _, _ = multipletests(p_raw, alpha=0.05, method="fdr_bh")   # statsmodels BH reference
-    by_f = {s for s, (sh, se) in shares.items() if sh < 0 and (sh / se) ** 2 >= 3.8416}
-    assert set(out) == {s for s, r in zip(shares, reject) if r} | by_f
+    assert set(out) == {s for s, r in zip(shares, reject) if r}
     assert "C" not in out and "A" not in out
     for s, p in zip(shares, adj):
         if s in out:
             assert out[s]["p_value"] == pytest.approx(p, rel=1e-9)   # same formula: rounding only
+            assert out[s]["p_value"] <= out[s]["threshold"]          # the reported p is the one compared
             assert out[s]["severity"] == "critical"
+
+
+def test_negative_first_stage_f_floor_does_not_bypass_bh():
+    # 29 strong sites and one negative site with F = 4 (one-sided p = 0.023): the F floor alone would
+    # have raised it; BH across the 30 sites (statsmodels reference) does not.
+    site_rows = [site_row(f"S{i:02d}", share=0.6, se=0.05, f=144.0) for i in range(29)]
+    site_rows.append(site_row("NEG", share=-0.1, se=0.05, f=4.0))
+    p_raw = [stats.norm.cdf(12.0)] * 29 + [stats.norm.cdf(-2.0)]
+    reject, _, _, _ = multipletests(p_raw, alpha=0.05, method="fdr_bh")
+    sites = [r["site_id"] for r in site_rows]
+    for floor in (0.0, 3.8416):                  # the floor only gates the tested family
+        cfg = make_config(negative_first_stage_min_f=floor)
+        out = by_rule(run(balanced_counts(sites), site_rows, config=cfg), "negative_first_stage")
+        assert not reject.any() and out == {}
+
+
+def test_negative_first_stage_uses_t_reference_under_cr1():
+    # same z = -3 but G = 6 clusters (ci_df = 5): the one-sided p-value is t(5)'s (scipy), not the normal's
+    rows = [dict(site_row("K", share=-0.3, se=0.1, f=9.0), ci_df=5)]
+    out = by_rule(run(balanced_counts(["K"]), rows), "negative_first_stage")
+    assert out["K"]["p_value"] == pytest.approx(stats.t.cdf(-3.0, 5), rel=1e-9) and "t(5)" in out["K"]["message"]
 
 
 def test_weak_first_stage_rule_of_thumb_and_message():

@@ -20,8 +20,10 @@ from takeup.pipeline.run.stages import run_monitoring
 from tests.conftest import TEST_KEY
 
 # Consequences of planted problems that are real findings, not false alarms: contamination at
-# C07 and non-delivery at C12 both lower the recent first stage.
-ALSO_EXPECTED = {("C07", "first_stage_decline"), ("C12", "first_stage_decline")}
+# C07 and non-delivery at C12 both lower the recent first stage; C27 stops uploading after
+# upload week 8, so the uptake reports of its week-8 lottery never arrive.
+ALSO_EXPECTED = {("C07", "first_stage_decline"), ("C12", "first_stage_decline"),
+                 ("C27", "missing_uptake_reports")}
 
 
 @pytest.fixture(scope="module")
@@ -133,6 +135,7 @@ def test_clean_data_resolves_alerts(demo_runs):
     resolved = set(third[third.status == "resolved"].index)
     assert "differential_missing_outcomes:C05:numeracy_score" in resolved
     assert any(k.startswith("stale_site:C27") for k in resolved)
+    assert "missing_uptake_reports:C27:-" in resolved          # its backlog brings the uptake reports
     still = third[third.status == "ongoing"]
     assert {"sample_ratio_mismatch", "control_uptake_drift", "outlier_site"} <= set(still.rule)
     # resolved alerts are kept in the history of earlier runs, never deleted

@@ -67,3 +67,15 @@ def test_planted_shift_detected_within_documented_delay():
     delay = (after - 8 + 1) * n
     assert (first >= 0).mean() > 0.99
     assert delay.mean() < 49.2 + 2 * n
+
+
+def test_readme_design_table_is_the_pipelines_computation():
+    """The README's drift design table is regenerated from the run's own design path (rounded level,
+    cached design, exact chain ARLs) and must appear verbatim."""
+    from pathlib import Path
+
+    from takeup.pipeline.run.trend_rows import drift_design_markdown
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    lines = [ln.strip() for ln in readme.splitlines()]
+    for line in drift_design_markdown(A.drift_odds_ratio, A.drift_arl0).splitlines():
+        assert line in lines, f"README drift design table out of date: {line}"

@@ -101,6 +101,10 @@ def _reference(site, z, d, y, cl, clustered):
         b0 = 1.7
         sm_itt = sm.OLS(y[k], zx).fit(**sm_kw)
         sm_fs = sm.OLS(d[k], zx).fit(**sm_kw)
+        # use_t=True: t reference, with G - 1 df for cluster-robust covariances (statsmodels
+        # sets df_resid_inference = n_groups - 1), n - 2 for HC1
+        sm_itt_t = sm.OLS(y[k], zx).fit(use_t=True, **sm_kw)
+        sm_fs_t = sm.OLS(d[k], zx).fit(use_t=True, **sm_kw)
         sm_b0 = sm.OLS(y[k] - b0 * d[k], zx).fit(**sm_kw)
         v_g, v_p, v_b0 = sm_itt.bse[1] ** 2, sm_fs.bse[1] ** 2, sm_b0.bse[1] ** 2
         out.append(dict(
@@ -111,6 +115,7 @@ def _reference(site, z, d, y, cl, clustered):
             sm_itt_se=sm_itt.bse[1], sm_fs_se=sm_fs.bse[1],
             cov=(v_g + b0**2 * v_p - v_b0) / (2 * b0),
             n_clusters=len(np.unique(cl[k])),
+            itt_ci_t=sm_itt_t.conf_int(0.05)[1], fs_ci_t=sm_fs_t.conf_int(0.05)[1],
         ))
     return out
 
@@ -172,10 +177,27 @@ def test_shares_statuses_and_interval(case):
     np.testing.assert_allclose(est.never_taker_share, 1 - est.uptake_treatment, rtol=0, atol=1e-15)
     # one-sided sites (even, except the swapped one) have no always-takers
     assert np.all(est.always_taker_share[[0, 2, 4, 6]] == 0)
-    # normal critical value (scipy) for the conventional interval
-    zc = stats.norm.ppf(0.975)
+    # conventional interval: normal critical value (scipy) under HC1; under CR1 t with G - 1
+    # df (Cameron & Miller 2015), checked against statsmodels use_t=True in test_cr1_t_intervals
+    if est.se_type == "HC1":
+        zc = stats.norm.ppf(0.975)
+        assert np.all(np.isnan(est.ci_df))
+    else:
+        zc = stats.t.ppf(0.975, est.n_clusters - 1)
+        np.testing.assert_array_equal(est.ci_df, est.n_clusters - 1)
     np.testing.assert_allclose(est.cace_ci_low, est.cace - zc * est.cace_se, rtol=1e-12)
     np.testing.assert_allclose(est.cace_ci_high, est.cace + zc * est.cace_se, rtol=1e-12)
+
+
+def test_cr1_t_intervals_equal_statsmodels(case):
+    """ITT and complier-share intervals under CR1 = statsmodels OLS cluster, use_t=True (t with G-1 df)."""
+    est, refs, clustered = case
+    if not clustered:
+        pytest.skip("HC1: normal reference (statsmodels' use_t would use n - 2 df)")
+    for s, r in enumerate(refs):
+        np.testing.assert_allclose([est.itt_ci_low[s], est.itt_ci_high[s]], r["itt_ci_t"], rtol=1e-6)
+        np.testing.assert_allclose([est.complier_share_ci_low[s], est.complier_share_ci_high[s]], r["fs_ci_t"],
+                                   rtol=1e-6)
 
 
 def test_level_changes_interval_only():

@@ -1,7 +1,8 @@
 """The sums behind the covariate-adjusted IV rows, aggregated in DuckDB for all sites at once.
 
 Two passes over the analysis sample joined to the declared covariates
-(complete rows only: outcome and every covariate reported and finite):
+(complete rows only: in the uptake sample under the study's missing-uptake rule,
+outcome and every covariate reported and finite):
 
 1. the cross-product matrix of the site-centred ``(1, Z, D, Y, X)`` per
    site x outcome (:class:`~takeup.pipeline.stats.estimators.adjusted.CrossMoments`);
@@ -46,7 +47,7 @@ def _names(p: int) -> list[str]:
 def _build_rows(con: duckdb.DuckDBPyConnection, covariates: list[str], data_cutoff) -> None:
     p = len(covariates)
     pivot = ", ".join(f"max(value) FILTER (WHERE covariate = $cov{j}) AS x{j}" for j in range(1, p + 1))
-    complete = " AND ".join(["s.y IS NOT NULL", "isfinite(s.y)"]
+    complete = " AND ".join(["s.in_uptake", "s.y IS NOT NULL", "isfinite(s.y)"]
                             + [f"c.x{j} IS NOT NULL AND isfinite(c.x{j})" for j in range(1, p + 1)])
     raw = ", ".join(["s.site_id", "s.outcome", "coalesce(s.cluster_id, '') AS cluster_id", "CAST(s.z AS DOUBLE) AS z",
                      "CAST(s.d AS DOUBLE) AS d", "s.y"] + [f"c.x{j}" for j in range(1, p + 1)])

@@ -10,22 +10,28 @@ Rules
 ==============================  ========  ==================================================
 rule                            severity  raised when
 ==============================  ========  ==================================================
-``negative_first_stage``        critical  one-sided test of complier share < 0 (z = share/SE,
-                                          BH-adjusted across sites) at ``fdr_q``; or the
-                                          share is negative with first-stage F at least
-                                          ``negative_first_stage_min_f``
+``negative_first_stage``        critical  one-sided test of complier share < 0 (share/SE, normal;
+                                          t(G-1) under CR1), BH-adjusted across the tested sites,
+                                          at ``fdr_q``; ``negative_first_stage_min_f`` (default 0)
+                                          only restricts which sites are tested
 ``sample_ratio_mismatch``       critical  Pearson chi-square of the arm counts (everyone
-                                          assigned) against the site's designed allocation
-                                          has p < ``srm_p_value``
+                                          assigned; clusters under cluster randomisation)
+                                          against the site's designed allocation has
+                                          p < ``srm_p_value``
 ``weak_first_stage``            warning   first-stage F < ``weak_first_stage_f``
 ``first_stage_decline``         warning   first stage of the latest ``first_stage_decline_periods``
-                                          cohorts below that of earlier cohorts (one-sided
-                                          test, BH-adjusted across sites) at ``fdr_q``
+                                          closed cohorts below that of earlier cohorts (one-sided
+                                          test, cluster totals under cluster randomisation,
+                                          BH-adjusted across sites) at ``fdr_q``
 ``control_uptake_drift``        warning   upward Bernoulli CUSUM of control uptake signalled
 ``treatment_uptake_drift``      warning   downward Bernoulli CUSUM of treated uptake signalled
-``differential_missing_outcomes`` warning missing-outcome shares differ between arms
-                                          (two-sided two-proportion z test, BH-adjusted across
-                                          sites) at ``fdr_q``
+``differential_missing_outcomes`` warning missing-outcome shares among participants due an
+                                          outcome differ between arms (two-sided two-proportion
+                                          z test; cluster totals under cluster randomisation;
+                                          BH-adjusted across sites) at ``fdr_q``
+``missing_uptake_reports``      warning   among participants due an uptake report, the share
+                                          without one exceeds ``missing_uptake_share`` in an arm,
+                                          or the shares differ between arms (two-sided test, BH)
 ``stale_site``                  warning   latest record more than ``stale_days`` before the
                                           cutoff, or a registry site with no record at all
 ``outlier_site``                info      pooled site's CACE far from the other sites given
@@ -42,8 +48,14 @@ that is simply different (worth a look, not an error).
 Multiple testing: Benjamini-Hochberg control of the false discovery rate at
 ``fdr_q`` is applied across sites within each test-based rule that runs one
 test per site at the conventional level -- ``negative_first_stage``,
-``first_stage_decline``, ``differential_missing_outcomes`` and ``outlier_site``.  Their
-``p_value`` column holds the BH-adjusted p-value.  The sample-ratio check
+``first_stage_decline``, ``differential_missing_outcomes``,
+``missing_uptake_reports`` and ``outlier_site``.  Their ``p_value`` column holds the
+BH-adjusted p-value, and it is the value compared with the threshold (no rule raises a
+test-based alert by another route).  Arm-comparison tests run only where each
+arm has at least ``min_arm_size`` participants.  Under cluster randomisation
+every arm comparison is made on the randomised unit: cluster counts for the
+sample-ratio check, cluster totals with CR1 variances for the proportion tests
+(:mod:`takeup.pipeline.stats.significance`).  The sample-ratio check
 uses no BH: its threshold (default 0.001) is already strict, chosen as in
 practice (common practice) for a check that is run on every site at every
 run.  Other rules compare a statistic with a threshold and have no p-value.
@@ -52,9 +64,12 @@ Columns: for threshold rules ``value`` and ``threshold`` are on the same
 scale (F and ``weak_first_stage_f``; CUSUM and its limit ``h``; days since
 the latest record and ``stale_days``).  For test rules ``value`` is the
 estimated quantity (complier share, decline in first stage, treated share of
-assignments, difference in missing shares; for ``outlier_site`` the
+assignments or clusters, difference in missing shares; for ``outlier_site`` the
 externally standardised residual) and ``threshold`` the level its
-(adjusted) p-value is compared with.
+(adjusted) p-value is compared with.  ``missing_uptake_reports``
+raised by its share threshold carries the larger missing share and
+``missing_uptake_share`` (and the BH-adjusted p-value of the difference
+test); raised by the test only, the difference in shares and ``fdr_q``.
 
 Lifecycle
 ---------
@@ -114,13 +129,14 @@ SEVERITY: dict[str, str] = {
     "control_uptake_drift": "warning",
     "treatment_uptake_drift": "warning",
     "differential_missing_outcomes": "warning",
+    "missing_uptake_reports": "warning",
     "stale_site": "warning",
     "outlier_site": "info",
 }
 RULES: tuple[str, ...] = tuple(SEVERITY)
 #: rules whose p-values are Benjamini-Hochberg adjusted across sites
 BH_RULES: tuple[str, ...] = ("negative_first_stage", "first_stage_decline", "differential_missing_outcomes",
-                             "outlier_site")
+                             "missing_uptake_reports", "outlier_site")
 _SEVERITY_ORDER = {"critical": 0, "warning": 1, "info": 2}
 _ACTIVE = ("new", "ongoing")
 
@@ -166,8 +182,9 @@ def _primary(inputs: RunInputs, ctx: RunContext) -> str | None:
 def _primary_rows(site_rows: list[dict], outcome: str | None) -> pd.DataFrame:
     rows = [r for r in site_rows if r.get("outcome") == outcome and r.get("spec", "unadjusted") == "unadjusted"]
     cols = ["site_id", "first_stage_f", "complier_share", "complier_share_se", "n_treatment", "n_control",
-            "n_treatment_assigned", "n_control_assigned", "missing_outcome_treatment",
-            "missing_outcome_control", "cace", "cace_se", "included_in_pool", "status"]
+            "n_treatment_assigned", "n_control_assigned", "due_treatment", "due_control",
+            "missing_outcome_treatment", "missing_outcome_control", "cace", "cace_se", "included_in_pool",
+            "status", "ci_df"]
     frame = pd.DataFrame(rows)
     for c in cols:
         if c not in frame.columns:
@@ -213,25 +230,46 @@ def _negative_first_stage(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
     share = _float(rows["complier_share"])
     se = _float(rows["complier_share_se"])
     f = _float(rows["first_stage_f"])
-    ok = np.isfinite(share) & np.isfinite(se) & (se > 0)
+    df = _float(rows["ci_df"])
+    big_enough = ((_float(rows["n_treatment_assigned"]) >= a.min_arm_size)
+                  & (_float(rows["n_control_assigned"]) >= a.min_arm_size))
+    # the F floor (default 0) only gates which sites form the tested family; every alert needs the BH test
+    gate = np.isfinite(f) & (f >= a.negative_first_stage_min_f) if a.negative_first_stage_min_f > 0 else True
+    ok = np.isfinite(share) & np.isfinite(se) & (se > 0) & big_enough & gate
     with np.errstate(invalid="ignore", divide="ignore"):
         z = np.where(ok, share / np.where(ok, se, 1.0), np.nan)
-    p_raw = np.where(ok, stats.norm.cdf(z), np.nan)          # H1: complier share < 0
+    # H1: complier share < 0; t(G - 1) under cluster-robust SEs (ci_df), normal otherwise
+    has_df = np.isfinite(df) & (df >= 1)
+    p_raw = np.where(ok, np.where(has_df, stats.t.cdf(z, np.where(has_df, df, 1.0)), stats.norm.cdf(z)), np.nan)
     p_adj = _bh(p_raw)
-    by_test = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
-    by_f = np.isfinite(share) & (share < 0) & np.isfinite(f) & (f >= a.negative_first_stage_min_f)
+    hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
-    for i in np.flatnonzero(by_test | by_f):
+    for i in np.flatnonzero(hit):
         site = rows.at[i, "site_id"]
-        why = (f"one-sided test of a negative first stage: BH-adjusted p = {_p(p_adj[i])} at "
-               f"q = {a.fdr_q:g}" if by_test[i] else
-               f"first-stage F {f[i]:.1f} is at least {a.negative_first_stage_min_f:g}")
+        ref = f"t({int(df[i])})" if has_df[i] else "normal"
         out.append(_alert(
             "negative_first_stage", site, outcome, share[i], a.fdr_q, p_adj[i],
             f"Uptake is lower among those offered the programme than among controls: complier share "
-            f"{share[i]:.3f} (SE {_num(se[i], 3)}; {why}). The CACE of this site is not interpretable; "
+            f"{share[i]:.3f} (SE {_num(se[i], 3)}; one-sided {ref} test of a negative first stage, BH-adjusted "
+            f"p = {_p(p_adj[i])} <= q = {a.fdr_q:g}). The CACE of this site is not interpretable; "
             f"check how assignments were recorded and delivered."))
     return out
+
+
+def closed_cohorts(cohort: pd.DataFrame, as_of, period_days: int, uptake_window_days: int) -> pd.DataFrame:
+    """The cohort rows whose uptake window has closed by the cutoff.
+
+    A cohort period starting on ``p`` is closed when its last assignment day plus
+    ``uptake_window_days`` is on or before ``as_of``: everyone in it is due an
+    uptake report.  Younger cohorts are still being reported and would look like
+    low uptake.
+    """
+    f = _counts(cohort) if "cluster_id" not in getattr(cohort, "columns", ()) else cohort.copy()
+    if len(f) == 0:
+        return f
+    starts = pd.to_datetime(f["period_start"])
+    last_due = starts + pd.Timedelta(days=period_days - 1 + uptake_window_days)
+    return f[(last_due <= pd.Timestamp(as_of)).to_numpy()].reset_index(drop=True)
 
 
 def decline_windows(cohort: pd.DataFrame, n_recent: int) -> pd.DataFrame:
@@ -272,16 +310,25 @@ def decline_windows(cohort: pd.DataFrame, n_recent: int) -> pd.DataFrame:
     return out[cols]
 
 
-def _first_stage_decline(inputs: RunInputs, a) -> list[dict]:
-    w = decline_windows(inputs.cohort_counts, a.first_stage_decline_periods)
+def _first_stage_decline(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+    t = ctx.config.trends
+    cohort = closed_cohorts(inputs.cohort_counts, ctx.as_of, t.period_days, t.uptake_window_days)
+    w = decline_windows(cohort, a.first_stage_decline_periods)
     if w.empty:
         return []
     n = {k: _float(w[k]) for k in w.columns if k.startswith(("x_", "n_")) and k != "n_periods"}
     eligible = ((w["n_periods"].to_numpy() > a.first_stage_decline_periods)
-                & (n["n_t_recent"] > 0) & (n["n_c_recent"] > 0) & (n["n_t_early"] > 0) & (n["n_c_early"] > 0))
+                & (n["n_t_recent"] > 0) & (n["n_c_recent"] > 0) & (n["n_t_early"] > 0) & (n["n_c_early"] > 0)
+                & (n["n_t_recent"] + n["n_t_early"] >= a.min_arm_size)
+                & (n["n_c_recent"] + n["n_c_early"] >= a.min_arm_size))
     test = _difference_test(n["x_t_recent"], n["n_t_recent"], n["x_c_recent"], n["n_c_recent"],
                             n["x_t_early"], n["n_t_early"], n["x_c_early"], n["n_c_early"])
-    p_raw = np.where(eligible, test["p_less"], np.nan)
+    p_one = test["p_less"]
+    how = "one-sided test"
+    if ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None:
+        p_one = _clustered_decline_p(inputs, ctx, w, a)
+        how = "one-sided test on cluster totals, t(G-2)"
+    p_raw = np.where(eligible, p_one, np.nan)
     p_adj = _bh(p_raw)
     hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
@@ -292,9 +339,31 @@ def _first_stage_decline(inputs: RunInputs, a) -> list[dict]:
             "first_stage_decline", site, None, fs_r - fs_e, a.fdr_q, p_adj[i],
             f"The first stage (treated minus control uptake) fell to {_pct(fs_r)} in the last "
             f"{a.first_stage_decline_periods} cohorts (from the cohort of {w.at[i, 'recent_from']}) from "
-            f"{_pct(fs_e)} in earlier cohorts (one-sided test, BH-adjusted p = {_p(p_adj[i])} at "
-            f"q = {a.fdr_q:g})."))
+            f"{_pct(fs_e)} in earlier cohorts ({how}, BH-adjusted p = {_p(p_adj[i])} at "
+            f"q = {a.fdr_q:g}; cohorts whose uptake window has closed)."))
     return out
+
+
+def _clustered_decline_p(inputs: RunInputs, ctx: RunContext, w: pd.DataFrame, a) -> np.ndarray:
+    """One-sided p-values of the decline per row of ``w`` from cluster-level cohort counts."""
+    t = ctx.config.trends
+    cc = closed_cohorts(inputs.cluster_cohort_counts, ctx.as_of, t.period_days, t.uptake_window_days)
+    cc = cc[pd.to_numeric(cc["n_observed"]) > 0]
+    pos = {s: i for i, s in enumerate(w["site_id"])}
+    cc = cc[cc["site_id"].astype(str).isin(pos)]
+    if cc.empty:
+        return np.full(len(w), np.nan)
+    start = pd.to_datetime(cc["period_start"]).dt.date
+    recent_from = cc["site_id"].astype(str).map(dict(zip(w["site_id"], w["recent_from"])))
+    recent = (start.to_numpy() >= pd.to_datetime(recent_from).dt.date.to_numpy())
+    si = cc["site_id"].astype(str).map(pos).to_numpy()
+    ci = pd.factorize(cc["site_id"].astype(str) + "\x1f" + cc["cluster_id"].astype(str))[0]
+    key = pd.DataFrame({"si": si, "ci": ci, "z": cc["z"].astype(int).to_numpy(), "r": recent.astype(int),
+                        "x": pd.to_numeric(cc["n_taken_up"]).to_numpy(float),
+                        "n": pd.to_numeric(cc["n_observed"]).to_numpy(float)})
+    g = key.groupby(["si", "ci", "z", "r"], as_index=False)[["x", "n"]].sum()
+    res = significance.clustered_first_stage_change(g.si, g.ci, g.z, g.r, g.x, g.n, len(w))
+    return np.asarray(res.p_value, float)
 
 
 def _drift(drift: DriftResult) -> list[dict]:
@@ -327,45 +396,163 @@ def _assigned_by_site(inputs: RunInputs) -> pd.DataFrame:
                          "n_c": g[0].to_numpy(float) if 0 in g.columns else np.zeros(len(g))})
 
 
+def _clusters_by_site(inputs: RunInputs) -> pd.DataFrame:
+    """Distinct clusters per site and arm (cluster randomisation)."""
+    cc = inputs.cluster_cohort_counts
+    if cc is None or len(cc) == 0:
+        return pd.DataFrame({"site_id": pd.Series(dtype=object), "g_t": pd.Series(dtype=float),
+                             "g_c": pd.Series(dtype=float)})
+    f = cc[pd.to_numeric(cc["n_assigned"]) > 0]
+    g = f.groupby(["site_id", "z"])["cluster_id"].nunique().unstack("z", fill_value=0)
+    return pd.DataFrame({"site_id": g.index.astype(str),
+                         "g_t": g[1].to_numpy(float) if 1 in g.columns else np.zeros(len(g)),
+                         "g_c": g[0].to_numpy(float) if 0 in g.columns else np.zeros(len(g))})
+
+
 def _sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
     arms = _assigned_by_site(inputs)
     arms = arms[(arms.n_t + arms.n_c) > 0].reset_index(drop=True)
     if arms.empty:
         return []
     share = np.array([ctx.config.treatment_share(s) for s in arms.site_id], dtype=float)
-    res = _srm_test(arms.n_t.to_numpy(float), arms.n_c.to_numpy(float), share)
+    by_cluster = ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None
+    if by_cluster:
+        # the randomised unit is the cluster: compare cluster counts with the design; participant
+        # counts vary with cluster sizes and are shown beside it only
+        g = _clusters_by_site(inputs).set_index("site_id").reindex(arms.site_id).fillna(0.0)
+        units_t, units_c = g["g_t"].to_numpy(float), g["g_c"].to_numpy(float)
+    else:
+        units_t, units_c = arms.n_t.to_numpy(float), arms.n_c.to_numpy(float)
+    res = _srm_test(units_t, units_c, share)
     hit = np.isfinite(res["p"]) & (res["p"] < a.srm_p_value)
     out = []
     for i in np.flatnonzero(hit):
         n_t, n_c = int(arms.at[i, "n_t"]), int(arms.at[i, "n_c"])
-        obs = n_t / (n_t + n_c)
+        u_t, u_c = int(units_t[i]), int(units_c[i])
+        obs = u_t / (u_t + u_c)
+        counted = (f"{u_t} treated and {u_c} control clusters ({_pct(obs)} treated; {n_t} and {n_c} participants)"
+                   if by_cluster else f"{n_t} treated and {n_c} controls assigned ({_pct(obs)} treated)")
         out.append(_alert(
             "sample_ratio_mismatch", arms.at[i, "site_id"], None, obs, a.srm_p_value, res["p"][i],
-            f"{n_t} treated and {n_c} controls assigned ({_pct(obs)} treated) against the designed "
+            f"{counted} against the designed "
             f"{_pct(share[i])}: chi-square {res['stat'][i]:.1f}, p = {_p(res['p'][i])} < {a.srm_p_value:g}. "
             f"Check the randomisation and how assignments are recorded."))
     return out
 
 
-def _differential_missing(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
-    nt_a = _float(rows["n_treatment_assigned"])
-    nc_a = _float(rows["n_control_assigned"])
+def _cluster_cells(frame: pd.DataFrame, sites: list, x_col: str, n_col: str) -> dict:
+    """Cells (site index, cluster index, z, x, n) of a cluster-level frame for the sites in ``sites``."""
+    pos = {s: i for i, s in enumerate(sites)}
+    f = frame[frame["site_id"].astype(str).isin(pos)]
+    ci = pd.factorize(f["site_id"].astype(str) + "\x1f" + f["cluster_id"].astype(str))[0]
+    g = pd.DataFrame({"si": f["site_id"].astype(str).map(pos).to_numpy(), "ci": ci,
+                      "z": f["z"].astype(int).to_numpy(), "x": pd.to_numeric(f[x_col]).to_numpy(float),
+                      "n": pd.to_numeric(f[n_col]).to_numpy(float)})
+    g = g.groupby(["si", "ci", "z"], as_index=False)[["x", "n"]].sum()
+    return {"site_index": g.si.to_numpy(), "cluster_index": g.ci.to_numpy(), "z": g.z.to_numpy(),
+            "x": g.x.to_numpy(), "n": g.n.to_numpy(), "n_sites": len(sites)}
+
+
+def _differential_missing(rows: pd.DataFrame, outcome: str, inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+    nt_a = _float(rows["due_treatment"])
+    nc_a = _float(rows["due_control"])
+    # rows from before the due counts existed: everyone assigned was due
+    nt_a = np.where(np.isfinite(nt_a), nt_a, _float(rows["n_treatment_assigned"]))
+    nc_a = np.where(np.isfinite(nc_a), nc_a, _float(rows["n_control_assigned"]))
     mt = _float(rows["missing_outcome_treatment"])
     mc = _float(rows["missing_outcome_control"])
-    measured = _float(rows["n_treatment"]) + _float(rows["n_control"])
-    eligible = (nt_a > 0) & (nc_a > 0) & (measured > 0)
+    measured = (nt_a - mt) + (nc_a - mc)
+    eligible = (nt_a >= a.min_arm_size) & (nc_a >= a.min_arm_size) & (nt_a > 0) & (nc_a > 0) & (measured > 0)
     res = _two_prop(np.where(eligible, mt, 0.0), np.where(eligible, nt_a, 1.0),
                     np.where(eligible, mc, 0.0), np.where(eligible, nc_a, 1.0))
-    p_adj = _bh(np.where(eligible, res["p"], np.nan))
+    p_one = res["p"]
+    how = "two-sided test"
+    cl = inputs.clusters
+    if ctx.config.randomisation_unit == "cluster" and cl is not None and len(cl):
+        f = cl[cl["outcome"] == outcome].assign(n_missing=lambda d: d["n_due"] - d["n_measured"])
+        cells = _cluster_cells(f, list(rows["site_id"].astype(str)), "n_missing", "n_due")
+        p_one = np.asarray(significance.clustered_two_proportion_test(**cells).p_value, float)
+        how = "two-sided test on cluster totals, t(G-2)"
+    p_adj = _bh(np.where(eligible, p_one, np.nan))
     hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
     for i in np.flatnonzero(hit):
         st, sc = mt[i] / nt_a[i], mc[i] / nc_a[i]
         out.append(_alert(
             "differential_missing_outcomes", rows.at[i, "site_id"], outcome, st - sc, a.fdr_q, p_adj[i],
-            f"Outcome missing for {_pct(st)} of treated ({int(mt[i])} of {int(nt_a[i])}) vs {_pct(sc)} of controls "
-            f"({int(mc[i])} of {int(nc_a[i])}) (two-sided test, BH-adjusted p = {_p(p_adj[i])} at "
+            f"Outcome missing for {_pct(st)} of treated ({int(mt[i])} of {int(nt_a[i])} due an outcome) vs "
+            f"{_pct(sc)} of controls ({int(mc[i])} of {int(nc_a[i])}) ({how}, BH-adjusted p = {_p(p_adj[i])} at "
             f"q = {a.fdr_q:g}): the ITT and CACE of this site may be biased by who is measured."))
+    return out
+
+
+def missing_uptake_counts(cohort: pd.DataFrame, as_of, period_days: int, uptake_window_days: int) -> pd.DataFrame:
+    """Per site: participants due an uptake report and those without one, by arm.
+
+    Due = in a cohort whose uptake window has closed (:func:`closed_cohorts`).
+
+    Returns
+    -------
+    DataFrame
+        site_id, due_t, missing_t, due_c, missing_c.
+    """
+    f = closed_cohorts(cohort, as_of, period_days, uptake_window_days)
+    cols = ["site_id", "due_t", "missing_t", "due_c", "missing_c"]
+    if len(f) == 0:
+        return pd.DataFrame({c: pd.Series(dtype=object if c == "site_id" else float) for c in cols})
+    f = f.assign(n_missing=pd.to_numeric(f["n_assigned"]) - pd.to_numeric(f["n_observed"]))
+    g = f.groupby(["site_id", "z"])[["n_assigned", "n_missing"]].sum().unstack("z", fill_value=0.0)
+    out = pd.DataFrame({"site_id": g.index.astype(str)})
+    for arm, z in (("t", 1), ("c", 0)):
+        out[f"due_{arm}"] = g[("n_assigned", z)].to_numpy(float) if ("n_assigned", z) in g.columns else 0.0
+        out[f"missing_{arm}"] = g[("n_missing", z)].to_numpy(float) if ("n_missing", z) in g.columns else 0.0
+    return out[cols]
+
+
+def _missing_uptake(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+    t = ctx.config.trends
+    m = missing_uptake_counts(inputs.cohort_counts, ctx.as_of, t.period_days, t.uptake_window_days)
+    if m.empty:
+        return []
+    due_t, due_c = _float(m["due_t"]), _float(m["due_c"])
+    mis_t, mis_c = _float(m["missing_t"]), _float(m["missing_c"])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sh_t = np.where(due_t > 0, mis_t / np.where(due_t > 0, due_t, 1.0), np.nan)
+        sh_c = np.where(due_c > 0, mis_c / np.where(due_c > 0, due_c, 1.0), np.nan)
+    testable = (due_t >= a.min_arm_size) & (due_c >= a.min_arm_size)
+    res = _two_prop(np.where(testable, mis_t, 0.0), np.where(testable, due_t, 1.0),
+                    np.where(testable, mis_c, 0.0), np.where(testable, due_c, 1.0))
+    p_one = res["p"]
+    how = "two-sided two-proportion test"
+    if ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None:
+        cc = closed_cohorts(inputs.cluster_cohort_counts, ctx.as_of, t.period_days, t.uptake_window_days)
+        cc = cc.assign(n_missing=pd.to_numeric(cc["n_assigned"]) - pd.to_numeric(cc["n_observed"]))
+        cells = _cluster_cells(cc, list(m["site_id"]), "n_missing", "n_assigned")
+        p_one = np.asarray(significance.clustered_two_proportion_test(**cells).p_value, float)
+        how = "two-sided test on cluster totals, t(G-2)"
+    p_adj = _bh(np.where(testable, p_one, np.nan))
+    worst = np.fmax(sh_t, sh_c)
+    by_share = np.isfinite(worst) & (worst > a.missing_uptake_share)
+    by_test = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
+    out = []
+    for i in np.flatnonzero(by_share | by_test):
+        p_txt = (f"{how} of equal shares: BH-adjusted p = {_p(p_adj[i])}" if np.isfinite(p_adj[i])
+                 else "no test of equal shares (an arm too small)")
+        if by_share[i]:
+            value, threshold = worst[i], a.missing_uptake_share
+            why = f"above the {_pct(a.missing_uptake_share)} threshold in at least one arm; {p_txt}"
+        else:
+            value, threshold = sh_t[i] - sh_c[i], a.fdr_q
+            why = f"the shares differ between arms ({p_txt} at q = {a.fdr_q:g})"
+        rule_txt = ("they are left out of the uptake estimates (complete case)"
+                    if ctx.config.uptake_missing == "complete_case" else "they are counted as not taken up")
+        out.append(_alert(
+            "missing_uptake_reports", m.at[i, "site_id"], None, value, threshold, p_adj[i],
+            f"No uptake report for {_pct(sh_t[i]) if np.isfinite(sh_t[i]) else 'n/a'} of treated "
+            f"({int(mis_t[i])} of {int(due_t[i])} due a report) and "
+            f"{_pct(sh_c[i]) if np.isfinite(sh_c[i]) else 'n/a'} of controls ({int(mis_c[i])} of {int(due_c[i])}): "
+            f"{why}. {rule_txt.capitalize()}; see the complier-share bounds in site_estimates and check how "
+            f"uptake is recorded."))
     return out
 
 
@@ -407,7 +594,7 @@ def _outliers(rows: pd.DataFrame, outcome: str, influence_rows: list[dict], a) -
         return []
     se = _float(inf["se"])
     test = outlier_test(_float(inf["estimate"]), se**2, _float(inf["loo_estimate"]), _float(inf["loo_se"]),
-                        _float(inf["loo_tau2"]), level=1.0 - a.test_alpha)
+                        _float(inf["loo_tau2"]), level=0.95)   # the range shown in the message
     p_adj = _bh(test.p_value)
     hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     if a.outlier_std_residual is not None:
@@ -443,10 +630,11 @@ def evaluate_rules(inputs: RunInputs, ctx: RunContext, site_rows: list[dict], po
     if len(rows):
         found += _negative_first_stage(rows, outcome, a)
         found += _weak_first_stage(rows, outcome, a)
-        found += _differential_missing(rows, outcome, a)
+        found += _differential_missing(rows, outcome, inputs, ctx, a)
         found += _outliers(rows, outcome, influence_rows, a)
     found += _sample_ratio(inputs, ctx, a)
-    found += _first_stage_decline(inputs, a)
+    found += _first_stage_decline(inputs, ctx, a)
+    found += _missing_uptake(inputs, ctx, a)
     found += _drift(drift)
     found += _stale(inputs, ctx, a)
     return found

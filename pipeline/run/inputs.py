@@ -67,6 +67,7 @@ class RunInputs:
     n_batches: int
     input_fingerprint: str
     adjusted: dict[str, AdjustedMoments] = field(default_factory=dict)   # outcome -> sums; covariate-adjusted rows
+    cluster_cohort_counts: pd.DataFrame | None = None  # site x arm x cohort period x cluster (cluster randomisation)
     previous_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)         # previous run's site sequences
     previous_pooled_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)  # and its pooled ones
 
@@ -84,6 +85,29 @@ def _period_start_sql(col: str, start_param: str = "$origin") -> str:
     """First day of the ``$period_days`` period containing ``col``, counted from ``$origin``."""
     return (f"({start_param} + to_days(CAST(floor(date_diff('day', {start_param}, {col}) / $period_days) "
             f"* $period_days AS INTEGER)))")
+
+
+def _cohort_origin(con: duckdb.DuckDBPyConnection, ctx: RunContext):
+    origin = con.execute("SELECT min(assigned_on) FROM _participants").fetchall()[0][0]
+    # align periods to the Monday on or before the first assignment when weekly
+    if origin is not None and ctx.config.trends.period_days == 7:
+        origin = origin - timedelta(days=origin.weekday())
+    return origin
+
+
+def _cluster_cohort_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> pd.DataFrame:
+    """Cohort counts per site x arm x period x cluster (cluster randomisation: cluster-level tests)."""
+    origin = _cohort_origin(con, ctx)
+    cols = ["site_id", "z", "period_start", "cluster_id", "n_assigned", "n_observed", "n_taken_up"]
+    if origin is None:
+        return pd.DataFrame(columns=cols)
+    return con.execute(f"""
+        SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
+               coalesce(cluster_id, '') AS cluster_id,
+               count(*) AS n_assigned, count(*) FILTER (WHERE uptake_observed) AS n_observed,
+               CAST(sum(d) AS BIGINT) AS n_taken_up
+        FROM _participants GROUP BY ALL ORDER BY ALL
+    """, {"origin": origin, "period_days": ctx.config.trends.period_days}).df()
 
 
 def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -189,6 +213,7 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
         clusters = cluster_moments(con) if config.randomisation_unit == "cluster" else None
         cells = covariate_cells(con, spec, list(config.covariates))
         cohort, calendar = _trend_counts(con, ctx)
+        cluster_cohort = (_cluster_cohort_counts(con, ctx) if config.randomisation_unit == "cluster" else None)
         activity = _site_activity(con, ctx)
         prev_id, prev = _previous_alerts(con, ctx)
         prev_site_seq, prev_pooled_seq = _previous_sequences(con, prev_id)
@@ -203,5 +228,6 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
                      covariate_cells=cells, cohort_counts=cohort, calendar_counts=calendar,
                      site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,
                      n_batches=n_batches, input_fingerprint=fingerprint, adjusted=adjusted,
-                     previous_sequences=prev_site_seq, previous_pooled_sequences=prev_pooled_seq)
+                     previous_sequences=prev_site_seq, previous_pooled_sequences=prev_pooled_seq,
+                     cluster_cohort_counts=cluster_cohort)
 

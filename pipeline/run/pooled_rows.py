@@ -41,6 +41,12 @@ def _meta_row(run_id: str, outcome: str, quantity: str, res: MetaResult, method_
     lo = res.hksj_ci_low if hksj else res.ci_low
     hi = res.hksj_ci_high if hksj else res.ci_high
     notes = [n for n in (res.note, note) if n]
+    if res.method == "fixed" and clean(res.pi_low) is not None:
+        notes.append("pi_low/pi_high: with tau2 = 0 by assumption this is a t(k-2) confidence interval "
+                     "for the common effect, not a prediction interval for a new site")
+    elif hksj and clean(res.pi_low) is not None:
+        notes.append("pi_low/pi_high: t(k-2) with sqrt(tau2 + se^2) and the conventional (not the HKSJ) "
+                     "standard error of the same tau2")
     return {
         "run_id": run_id, "outcome": outcome, "quantity": quantity, "method": method_label,
         "group_field": group_field, "group": group,

@@ -6,14 +6,22 @@ run can be recomputed exactly later:
 
 * assigned participants: ``assignments.assigned_on <= as_of``;
 * uptake ``D`` = 1 when any uptake observation on or before the cutoff says
-  ``took_up``; 0 otherwise (no observation yet counts as not taken up —
-  ``uptake_observed`` tells them apart for the trends);
+  ``took_up``, 0 when the reports say not taken up.  A participant with **no
+  uptake report** by the cutoff (``uptake_observed`` false) is handled by the
+  study's ``uptake_missing`` rule: ``complete_case`` (default) leaves them out
+  of the uptake and outcome moments (``in_uptake`` false), the way a missing
+  outcome is left out; ``not_taken_up`` counts them as ``D = 0`` (for
+  programmes that record only positive uptake).  Either way they are counted
+  (``uptake_missing_*``);
 * outcome ``Y``: measurements of that outcome with
   ``min_days <= measured_on - assigned_on <= max_days`` and
   ``measured_on <= as_of``; with several, the study's ``follow_up.rule``
   picks the last (default), the first, or their mean.  Participants
-  without such a measurement have a missing outcome: they are counted
-  (``missing_outcome_*``) and left out of the outcome moments.
+  assigned at least ``min_days`` before the cutoff are *due* an outcome
+  (``outcome_due``); those due without such a measurement have a missing
+  outcome (``missing_outcome_*`` = due - measured).  The analysis sample of an
+  outcome is the complete case: outcome measured and (under
+  ``complete_case``) uptake reported.
 
 Only aggregates leave DuckDB: one row per site x outcome x arm (and per
 cluster cell, per covariate cell) — never participant rows.
@@ -42,10 +50,13 @@ class SampleSpec:
     min_days: int
     max_days: int
     rule: str
+    uptake_missing: str = "complete_case"
+    uptake_window_days: int = 14
 
     @classmethod
     def from_config(cls, config: StudyConfig, as_of: date, data_cutoff: datetime) -> "SampleSpec":
-        return cls(as_of, data_cutoff, config.follow_up.min_days, config.follow_up.max_days, config.follow_up.rule)
+        return cls(as_of, data_cutoff, config.follow_up.min_days, config.follow_up.max_days, config.follow_up.rule,
+                   config.uptake_missing, config.trends.uptake_window_days)
 
     def params(self) -> dict:
         return {"as_of": self.as_of, "data_cutoff": self.data_cutoff}
@@ -74,9 +85,12 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
     """Materialise the temp tables of the analysis sample.
 
     ``_participants``: one row per assigned participant (site_id, participant_key, cluster_id,
-    assigned_on, z, d, uptake_observed, first_obs, first_yes — the first uptake report and the
-    first report of uptake, for the calendar trends).
-    ``_sample``: one row per assigned participant x outcome (site_id, cluster_id, z, d, outcome, y).
+    assigned_on, z, d, uptake_observed, in_uptake (enters the uptake moments under the study's
+    ``uptake_missing`` rule), outcome_due (assigned at least ``min_days`` before the cutoff),
+    first_obs, first_yes — the first uptake report and the first report of uptake, for the
+    calendar trends).
+    ``_sample``: one row per assigned participant x outcome (site_id, cluster_id, z, d,
+    uptake_observed, in_uptake, outcome_due, outcome, y).
 
     Joins use ``participant_key`` alone: the pseudonym already encodes the site.
     """
@@ -94,15 +108,18 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
                CASE WHEN t.arm = 'treatment' THEN 1 ELSE 0 END AS z,
                CASE WHEN coalesce(u.took_up, FALSE) THEN 1.0 ELSE 0.0 END AS d,
                u.took_up IS NOT NULL AS uptake_observed,
+               (u.took_up IS NOT NULL OR NOT $complete_case) AS in_uptake,
+               date_diff('day', t.assigned_on, $as_of) >= $min_days AS outcome_due,
                CASE WHEN u.first_obs IS NOT NULL THEN greatest(u.first_obs, t.assigned_on) END AS first_obs,
                CASE WHEN u.first_yes IS NOT NULL THEN greatest(u.first_yes, t.assigned_on) END AS first_yes
         FROM assignments t LEFT JOIN u USING (participant_key)
         WHERE t.assigned_on <= $as_of{fa}
-    """, spec.params() if fa or fu else {"as_of": spec.as_of})
+    """, {**(spec.params() if fa or fu else {"as_of": spec.as_of}),
+          "complete_case": spec.uptake_missing == "complete_case", "min_days": spec.min_days})
     if not outcomes:
         con.execute("CREATE OR REPLACE TEMP TABLE _sample AS SELECT site_id, participant_key, cluster_id, z, d, "
-                    "uptake_observed, CAST(NULL AS VARCHAR) AS outcome, CAST(NULL AS DOUBLE) AS y "
-                    "FROM _participants WHERE FALSE")
+                    "uptake_observed, in_uptake, outcome_due, CAST(NULL AS VARCHAR) AS outcome, "
+                    "CAST(NULL AS DOUBLE) AS y FROM _participants WHERE FALSE")
         return
     con.execute(f"""
         CREATE OR REPLACE TEMP TABLE _sample AS
@@ -114,7 +131,8 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
               AND list_contains($outcomes, t.outcome)
             GROUP BY t.participant_key, t.outcome
         ), names AS (SELECT unnest($outcomes) AS outcome)
-        SELECT a.site_id, a.participant_key, a.cluster_id, a.z, a.d, a.uptake_observed, names.outcome, o.y
+        SELECT a.site_id, a.participant_key, a.cluster_id, a.z, a.d, a.uptake_observed, a.in_uptake,
+               a.outcome_due, names.outcome, o.y
         FROM _participants a CROSS JOIN names
         LEFT JOIN o ON o.participant_key = a.participant_key AND o.outcome = names.outcome
     """, {**(spec.params() if fo else {"as_of": spec.as_of}), "min_days": spec.min_days,
@@ -124,32 +142,47 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
 def site_outcome_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
     """One row per site x outcome x arm with counts and the sums of D, Y, D², Y², DY.
 
-    ``n``/``sum_*`` cover the analysis sample (outcome observed); ``n_assigned``
-    and ``sum_d_assigned`` cover every assigned participant (first stage without
-    outcomes); ``n_uptake_observed`` counts those with an uptake report.
+    ``n``/``sum_*`` cover the analysis sample (outcome observed and, under the
+    complete-case rule, uptake reported); ``n_assigned`` counts every assigned
+    participant and ``sum_d_assigned`` those reported as taken up;
+    ``n_first_stage``/``sum_d_first_stage`` cover the first-stage sample (every
+    assigned participant in ``in_uptake``: the first stage of a site without
+    outcomes); ``n_uptake_observed`` counts those with an uptake report;
+    ``n_due`` those due an outcome and ``n_measured`` those with a measurement.
     """
     return con.execute("""
         SELECT site_id, outcome, z,
                count(*) AS n_assigned,
                sum(d) AS sum_d_assigned,
                count(*) FILTER (WHERE uptake_observed) AS n_uptake_observed,
-               count(y) AS n,
-               coalesce(sum(d) FILTER (WHERE y IS NOT NULL), 0) AS sum_d,
-               coalesce(sum(y), 0) AS sum_y,
-               coalesce(sum(d * d) FILTER (WHERE y IS NOT NULL), 0) AS sum_dd,
-               coalesce(sum(y * y), 0) AS sum_yy,
-               coalesce(sum(d * y), 0) AS sum_dy
+               count(*) FILTER (WHERE in_uptake) AS n_first_stage,
+               coalesce(sum(d) FILTER (WHERE in_uptake), 0) AS sum_d_first_stage,
+               count(*) FILTER (WHERE outcome_due) AS n_due,
+               count(y) AS n_measured,
+               count(y) FILTER (WHERE in_uptake) AS n,
+               coalesce(sum(d) FILTER (WHERE y IS NOT NULL AND in_uptake), 0) AS sum_d,
+               coalesce(sum(y) FILTER (WHERE in_uptake), 0) AS sum_y,
+               coalesce(sum(d * d) FILTER (WHERE y IS NOT NULL AND in_uptake), 0) AS sum_dd,
+               coalesce(sum(y * y) FILTER (WHERE in_uptake), 0) AS sum_yy,
+               coalesce(sum(d * y) FILTER (WHERE in_uptake), 0) AS sum_dy
         FROM _sample GROUP BY site_id, outcome, z ORDER BY site_id, outcome, z
     """).df()
 
 
 def cluster_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """One row per site x outcome x cluster x arm (analysis sample), for CR1 variances."""
+    """One row per site x outcome x cluster x arm (analysis sample), for CR1 variances.
+
+    ``n_due``/``n_measured`` (every participant of the cell due an outcome / with one) feed
+    the cluster-level missing-outcome test; cells without any participant in the analysis
+    sample have ``n = 0`` and are ignored by the estimators.
+    """
     return con.execute("""
         SELECT site_id, outcome, coalesce(cluster_id, '') AS cluster_id, z,
-               count(y) AS n, coalesce(sum(d) FILTER (WHERE y IS NOT NULL), 0) AS sum_d,
-               coalesce(sum(y), 0) AS sum_y
-        FROM _sample GROUP BY ALL HAVING count(y) > 0 ORDER BY ALL
+               count(y) FILTER (WHERE in_uptake) AS n,
+               coalesce(sum(d) FILTER (WHERE y IS NOT NULL AND in_uptake), 0) AS sum_d,
+               coalesce(sum(y) FILTER (WHERE in_uptake), 0) AS sum_y,
+               count(*) FILTER (WHERE outcome_due) AS n_due, count(y) AS n_measured
+        FROM _sample GROUP BY ALL ORDER BY ALL
     """).df()
 
 
@@ -160,7 +193,7 @@ def covariate_cells(con: duckdb.DuckDBPyConnection, spec: SampleSpec, covariates
     return con.execute("""
         SELECT p.site_id, c.covariate, p.z, CAST(p.d AS INTEGER) AS d, count(c.value) AS n, coalesce(sum(c.value), 0) AS sum_x
         FROM _participants p JOIN assignment_covariates c USING (participant_key)
-        WHERE list_contains($covs, c.covariate) AND c.value IS NOT NULL
+        WHERE list_contains($covs, c.covariate) AND c.value IS NOT NULL AND p.in_uptake
           AND c.batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $data_cutoff)
         GROUP BY ALL ORDER BY ALL
     """, {"covs": list(covariates), "data_cutoff": spec.data_cutoff}).df()
@@ -174,8 +207,11 @@ class MomentTable:
     sites: tuple[str, ...]
     moments: SiteMoments            # analysis sample
     n_assigned: np.ndarray          # shape (k, 2): [:, 0] control, [:, 1] treatment
-    sum_d_assigned: np.ndarray
-    first_stage_moments: SiteMoments  # all assigned, Y := 0 (first stage only)
+    sum_d_assigned: np.ndarray      # reported as taken up, among all assigned
+    first_stage_moments: SiteMoments  # all assigned in the uptake sample, Y := 0 (first stage only)
+    n_uptake_observed: np.ndarray   # shape (k, 2): with an uptake report by the cutoff
+    n_due: np.ndarray               # shape (k, 2): due an outcome (assigned at least min_days before the cutoff)
+    n_measured: np.ndarray          # shape (k, 2): with an outcome in the window (uptake reported or not)
 
 
 def _arm(frame: pd.DataFrame, z: int, sites: list[str], cols: dict[str, str]) -> dict[str, np.ndarray]:
@@ -189,9 +225,13 @@ def moments_for_outcome(frame: pd.DataFrame, outcome: str, sites: list[str]) -> 
     main = {"n": "n", "sum_d": "sum_d", "sum_y": "sum_y", "sum_dd": "sum_dd", "sum_yy": "sum_yy", "sum_dy": "sum_dy"}
     t = _arm(f, 1, sites, main)
     c = _arm(f, 0, sites, main)
-    fs_cols = {"n": "n_assigned", "sum_d": "sum_d_assigned"}
+    fs_cols = {"n": "n_first_stage", "sum_d": "sum_d_first_stage"}
     ft = _arm(f, 1, sites, fs_cols)
     fc = _arm(f, 0, sites, fs_cols)
+    count_cols = {"n_assigned": "n_assigned", "sum_d_assigned": "sum_d_assigned",
+                  "n_uptake_observed": "n_uptake_observed", "n_due": "n_due", "n_measured": "n_measured"}
+    ct = _arm(f, 1, sites, count_cols)
+    cc = _arm(f, 0, sites, count_cols)
 
     def fs_arm(a):
         zero = np.zeros_like(a["n"])
@@ -200,9 +240,12 @@ def moments_for_outcome(frame: pd.DataFrame, outcome: str, sites: list[str]) -> 
     return MomentTable(
         outcome=outcome, sites=tuple(sites),
         moments=SiteMoments(treated=ArmMoments(**t), control=ArmMoments(**c)),
-        n_assigned=np.column_stack([fc["n"], ft["n"]]),
-        sum_d_assigned=np.column_stack([fc["sum_d"], ft["sum_d"]]),
+        n_assigned=np.column_stack([cc["n_assigned"], ct["n_assigned"]]),
+        sum_d_assigned=np.column_stack([cc["sum_d_assigned"], ct["sum_d_assigned"]]),
         first_stage_moments=SiteMoments(treated=fs_arm(ft), control=fs_arm(fc)),
+        n_uptake_observed=np.column_stack([cc["n_uptake_observed"], ct["n_uptake_observed"]]),
+        n_due=np.column_stack([cc["n_due"], ct["n_due"]]),
+        n_measured=np.column_stack([cc["n_measured"], ct["n_measured"]]),
     )
 
 

@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from takeup.pipeline.stats.estimators.complier_means import complier_outcome_means, kappa_complier_means
+from takeup.pipeline.stats.estimators.missing_uptake import complier_share_bounds
 from takeup.pipeline.stats.estimators.moments import ClusterMoments
 from takeup.pipeline.stats.estimators.wald import wald_estimates
 from takeup.pipeline.stats.estimators.weak_iv import anderson_rubin_set, tf_interval
@@ -42,6 +43,11 @@ def clean(x):
     return v if math.isfinite(v) else None
 
 
+def _fmt(x) -> str:
+    v = clean(x)
+    return "n/a" if v is None else f"{v:.3f}"
+
+
 def _join_notes(*notes) -> str | None:
     parts = []
     for n in notes:
@@ -56,18 +62,26 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
                    clusters: ClusterMoments | None = None) -> list[dict]:
     """Rows of ``site_estimates`` (spec ``unadjusted``) for one outcome."""
     level = config.estimation.level
-    est = wald_estimates(table.moments, clusters=clusters, level=level)
+    min_cl = config.estimation.min_clusters_per_arm
+    est = wald_estimates(table.moments, clusters=clusters, level=level, min_clusters_per_arm=min_cl)
     fs_only = wald_estimates(table.first_stage_moments, level=level)
     ar = anderson_rubin_set(est.itt, est.complier_share, est.itt_se ** 2, est.complier_share_se ** 2,
-                            est.cov_itt_fs, level=level)
+                            est.cov_itt_fs, level=level, df=est.ci_df)
     tf = tf_interval(est.cace, est.cace_se, est.first_stage_f)
     cm = complier_outcome_means(table.moments)
+    missing = table.n_assigned - table.n_uptake_observed
+    bounds = complier_share_bounds(table.sum_d_assigned[:, 1], missing[:, 1], table.n_assigned[:, 1],
+                                   table.sum_d_assigned[:, 0], missing[:, 0], table.n_assigned[:, 0])
+    complete_case = config.uptake_missing == "complete_case"
     floor = config.estimation.pool_min_first_stage_f
     rows = []
     m = table.moments
     for i, site in enumerate(table.sites):
         n_t, n_c = int(m.treated.n[i]), int(m.control.n[i])
         nat_c, nat_t = int(table.n_assigned[i, 0]), int(table.n_assigned[i, 1])
+        due_c, due_t = int(table.n_due[i, 0]), int(table.n_due[i, 1])
+        meas_c, meas_t = int(table.n_measured[i, 0]), int(table.n_measured[i, 1])
+        um_c, um_t = int(missing[i, 0]), int(missing[i, 1])
         no_outcomes = n_t == 0 and n_c == 0
         src = fs_only if no_outcomes else est
         status = str(src.status[i])
@@ -80,7 +94,8 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
             fs_notes = [p for p in str(src.note[i] or "").split("; ")
                         if p and "ITT" not in p and "CACE" not in p and "outcome" not in p]
             note = _join_notes("no outcome measurements in the follow-up window yet: ITT and CACE are "
-                               "not available; uptake and first stage use all assigned participants", *fs_notes)
+                               "not available; uptake and first stage use all assigned participants (with an uptake report, "
+                               "under the complete-case rule)", *fs_notes)
         ar_kind = str(ar.kind[i])
         ar_ok = (not no_outcomes) and ar_kind in _AR_KINDS
         f_stat = clean(src.first_stage_f[i])
@@ -88,13 +103,20 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
             "run_id": run_id, "site_id": site, "outcome": table.outcome, "spec": "unadjusted",
             "n_treatment": n_t, "n_control": n_c,
             "n_treatment_assigned": nat_t, "n_control_assigned": nat_c,
-            "missing_outcome_treatment": nat_t - n_t, "missing_outcome_control": nat_c - n_c,
+            "due_treatment": due_t, "due_control": due_c,
+            "missing_outcome_treatment": due_t - meas_t, "missing_outcome_control": due_c - meas_c,
+            "uptake_missing_treatment": um_t, "uptake_missing_control": um_c,
             "uptake_treatment": clean(src.uptake_treatment[i]), "uptake_control": clean(src.uptake_control[i]),
             "complier_share": clean(src.complier_share[i]), "complier_share_se": clean(src.complier_share_se[i]),
+            "complier_share_ci_low": clean(src.complier_share_ci_low[i]),
+            "complier_share_ci_high": clean(src.complier_share_ci_high[i]),
+            "complier_share_bound_low": clean(bounds.low[i]), "complier_share_bound_high": clean(bounds.high[i]),
             "always_taker_share": clean(src.always_taker_share[i]),
             "never_taker_share": clean(src.never_taker_share[i]),
             "itt": None if no_outcomes else clean(est.itt[i]),
             "itt_se": None if no_outcomes else clean(est.itt_se[i]),
+            "itt_ci_low": None if no_outcomes else clean(est.itt_ci_low[i]),
+            "itt_ci_high": None if no_outcomes else clean(est.itt_ci_high[i]),
             "cace": None if no_outcomes else clean(est.cace[i]),
             "cace_se": None if no_outcomes else clean(est.cace_se[i]),
             "cace_ci_low": None if no_outcomes else clean(est.cace_ci_low[i]),
@@ -109,6 +131,7 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
             "se_type": src.se_type,
             "n_clusters": (int(src.n_clusters[i]) if clusters is not None and np.isfinite(src.n_clusters[i])
                            else None),
+            "ci_df": (int(src.ci_df[i]) if clusters is not None and np.isfinite(src.ci_df[i]) else None),
             "complier_mean_treated": None if no_outcomes else clean(cm.complier_treated[i]),
             "complier_mean_untreated": None if no_outcomes else clean(cm.complier_control[i]),
             "status": status,
@@ -120,6 +143,15 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
             extra_notes.append(str(ar.note[i]))
         if not no_outcomes and row["cace"] is not None and row["tf_ci_low"] is None and tf.note[i]:
             extra_notes.append(str(tf.note[i]))
+        if clusters is not None and row["tf_ci_low"] is not None:
+            extra_notes.append(f"the tF interval uses the critical values of Lee et al. (2022), derived for many "
+                               f"clusters; with {row['n_clusters']} clusters prefer the Anderson-Rubin set, which "
+                               f"uses t({row['ci_df']})")
+        if um_t or um_c:
+            rule = ("left out of the uptake and outcome moments (complete case)" if complete_case
+                    else "counted as not taken up (uptake_missing = not_taken_up)")
+            extra_notes.append(f"{um_t} treated and {um_c} controls have no uptake report by the cutoff: {rule}; "
+                               f"worst-case complier-share bounds [{_fmt(bounds.low[i])}, {_fmt(bounds.high[i])}]")
         # the pooling rule
         reason = None
         if status != "ok":
@@ -139,6 +171,8 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
 def adjusted_row(base: dict, est, j: int, run_id: str) -> dict:
     """A ``covariate_adjusted`` row from entry ``j`` of :class:`AdjustedEstimates` and the site's unadjusted row."""
     keep = ("site_id", "outcome", "n_treatment", "n_control", "n_treatment_assigned", "n_control_assigned",
+            "due_treatment", "due_control", "uptake_missing_treatment", "uptake_missing_control",
+            "complier_share_bound_low", "complier_share_bound_high",
             "missing_outcome_treatment", "missing_outcome_control", "uptake_treatment", "uptake_control",
             "always_taker_share", "never_taker_share", "complier_mean_treated", "complier_mean_untreated")
     row = {k: base[k] for k in keep}

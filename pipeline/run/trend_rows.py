@@ -38,7 +38,10 @@ On the cohort basis each site x arm gets a one-sided Bernoulli CUSUM
 * treatment arm, **downward** chart (offers not delivered), odds divided by
   ``alerts.drift_odds_ratio``.
 
-The in-control rate ``p0`` is the pooled uptake of the first
+The charts use only cohorts whose uptake window has closed by the cutoff
+(``trends.uptake_window_days`` after the period's last day,
+:func:`closed_cohort_counts`): a cohort still being reported would look like
+low uptake.  The in-control rate ``p0`` is the pooled uptake of the first
 ``alerts.drift_baseline_periods`` periods of that site x arm that have uptake
 reports (:func:`~takeup.pipeline.stats.drift.baseline.baseline_rate`, with its
 continuity floor/ceiling ``[0.5/N, 1 - 0.5/N]``).  The chart runs over the
@@ -69,12 +72,14 @@ import pandas as pd
 
 from takeup.pipeline.stats.drift.baseline import baseline_rate
 from takeup.pipeline.stats.drift.chart import bernoulli_cusum, shifted_rate
-from takeup.pipeline.stats.drift.design import design_cusum
+from takeup.pipeline.stats.drift.design import calibrate_for_estimated_level, design_cusum
+from takeup.pipeline.stats.drift.run_length import arl_bernoulli
 from takeup.pipeline.stats.drift.shrinkage import shrink_rates
 from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.run.site_rows import clean
 
-__all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "ARMS_BY_Z", "DESIGN_REL_TOL"]
+__all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "closed_cohort_counts", "ARMS_BY_Z",
+           "DESIGN_REL_TOL"]
 
 #: arm label by assignment indicator z (0 control, 1 treatment)
 ARMS_BY_Z: tuple[str, str] = ("control", "treatment")
@@ -301,8 +306,43 @@ def _design_h(p0: float, odds_ratio: float, target_arl0: float) -> tuple[float, 
     return float(np.asarray(d.h)[0]), d.notes[0]
 
 
+#: the estimation error of an in-control level is rounded to this step (logit scale) before the
+#: limit is calibrated, so that a run calibrates a few dozen distinct charts at most (cached)
+LOGIT_SD_STEP = 0.02
+
+
+@functools.lru_cache(maxsize=4096)
+def _calibrated_h(p0: float, odds_ratio: float, target_arl0: float, logit_sd: float) -> float:
+    h, _ = _design_h(p0, odds_ratio, target_arl0)
+    if not np.isfinite(h):
+        return h
+    p1 = float(shifted_rate(np.array([p0]), np.array([odds_ratio]))[0])
+    return calibrate_for_estimated_level(p0, p1, h, target_arl0, logit_sd, rel_tol=DESIGN_REL_TOL)
+
+
+def level_logit_sd(p0, n_baseline, weight=None, prior_mean=None, n_arm=None) -> np.ndarray:
+    """Standard deviation (logit scale) of the estimation error of an in-control level.
+
+    Own baseline (``weight`` None): binomial, ``sqrt(p(1-p)/n)``.  Shrunk baseline: the
+    normal-normal posterior variance ``w p(1-p)/n`` plus ``(1-w)^2`` times the variance of the
+    arm's pooled level ``m(1-m)/N`` (Efron & Morris 1975).  Divided by ``p(1-p)`` (delta method).
+    """
+    p0 = np.asarray(p0, dtype=float)
+    n = np.asarray(n_baseline, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        v_own = p0 * (1 - p0) / n
+        if weight is None:
+            var = v_own
+        else:
+            w = np.clip(np.asarray(weight, dtype=float), 0.0, 1.0)
+            m = np.asarray(prior_mean, dtype=float)
+            var = w * v_own + (1 - w) ** 2 * m * (1 - m) / np.asarray(n_arm, dtype=float)
+        sd = np.sqrt(var) / (p0 * (1 - p0))
+    return np.where(np.isfinite(sd), sd, np.nan)
+
+
 def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio: float,
-                 target_arl0: float, baseline: str = "shrunk") -> DriftResult:
+                 target_arl0: float, baseline: str = "shrunk", calibration: str = "estimated_level") -> DriftResult:
     """One-sided Bernoulli CUSUM per site x arm on cohort counts.
 
     Parameters
@@ -318,6 +358,13 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
         (``1/odds_ratio``) for treatment.
     target_arl0 : float
         In-control average run length in participants.
+    baseline : {"shrunk", "site"}
+        In-control level: the site's baseline shrunk toward the arm's study-wide baseline, or its own.
+    calibration : {"estimated_level", "known_level"}
+        ``estimated_level`` (default): ``h`` raised by :func:`calibrate_for_estimated_level` so
+        that the expected per-participant false-alarm rate, over the estimation error of the
+        level (:func:`level_logit_sd`), is ``1 / target_arl0``; ``known_level``: ``h`` designed as
+        if the level were known.
 
     Returns
     -------
@@ -339,6 +386,8 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
     .. [2] Page, E. S. (1954). Continuous inspection schemes. *Biometrika*
        41(1/2), 100-115.
     """
+    if calibration not in ("estimated_level", "known_level"):
+        raise ValueError(f"calibration must be 'estimated_level' or 'known_level', got {calibration!r}")
     f = _normalise(cohort_counts)
     if f.empty:
         return _empty_drift()
@@ -363,13 +412,19 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
     nb = np.where(in_base, n, 0.0)
     base = baseline_rate(xb, nb, n_per)
     p0 = np.array(base.rate, dtype=float)
+    n_base = nb.sum(axis=1)
     if baseline == "shrunk":
         # empirical-Bayes shrinkage of each site's baseline toward the arm's study-wide baseline
-        shrunk = shrink_rates(xb.sum(axis=1), nb.sum(axis=1), np.arange(n_series) % 2)
+        shrunk = shrink_rates(xb.sum(axis=1), n_base, np.arange(n_series) % 2)
         with np.errstate(invalid="ignore", divide="ignore"):
-            lo = 0.5 / nb.sum(axis=1)
+            lo = 0.5 / n_base
         keep = np.isfinite(shrunk.rate) & np.isfinite(p0)
         p0 = np.where(keep, np.clip(shrunk.rate, lo, 1.0 - lo), p0)
+        arm_n = np.array([n_base[np.arange(n_series) % 2 == g].sum() for g in (0, 1)])[np.arange(n_series) % 2]
+        sd = np.where(keep, level_logit_sd(p0, n_base, shrunk.weight, shrunk.prior_mean, arm_n),
+                      level_logit_sd(p0, n_base))
+    else:
+        sd = level_logit_sd(p0, n_base)
     ok = np.isfinite(p0)
     p0 = np.where(ok, round_level(p0), np.nan)
     is_up = (np.arange(n_series) % 2) == 0          # control rows: upward chart
@@ -379,7 +434,11 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
     h = np.full(n_series, np.nan)
     design_notes = [""] * n_series
     for pos in np.flatnonzero(ok):     # cached per distinct (p0, odds ratio): a few dozen designs at most
-        h[pos], design_notes[pos] = _design_h(round(float(p0[pos]), 6), float(ors[pos]), float(target_arl0))
+        key = (round(float(p0[pos]), 6), float(ors[pos]), float(target_arl0))
+        h[pos], design_notes[pos] = _design_h(*key)
+        if calibration == "estimated_level" and np.isfinite(sd[pos]) and np.isfinite(h[pos]):
+            s_r = round(round(float(sd[pos]) / LOGIT_SD_STEP) * LOGIT_SD_STEP, 6)
+            h[pos] = _calibrated_h(*key, s_r)
 
     chart = bernoulli_cusum(np.where(monitored, x, 0.0), np.where(monitored, n, 0.0), p0, p1, h)
     stat = np.array(chart.statistic, dtype=float)
@@ -429,6 +488,62 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
     )
 
 
+#: the demo's typical in-control levels, by arm, at which the README documents the drift design
+DOCUMENTED_LEVELS: tuple[tuple[str, float], ...] = (("control", 0.08), ("treatment", 0.70))
+
+
+def drift_design_rows(odds_ratio: float, target_arl0: float, levels=DOCUMENTED_LEVELS,
+                      cohort_size: int = 25) -> list[dict]:
+    """The drift design exactly as a run builds it, at the given in-control levels.
+
+    Each level is rounded as in :func:`detect_drift` (:func:`round_level`) and designed through the
+    same cached call (``DESIGN_REL_TOL``), so the README's design table, which is generated from
+    these rows, is the pipeline's own computation.
+
+    Returns
+    -------
+    list of dict
+        arm, p0 (level given), p0_design (rounded level the chart is designed at), p1, h, and the
+        exact (Markov chain) ARLs in participants: arl0, arl0_cohort (periods of ``cohort_size``),
+        arl1, arl1_cohort (the shift present from the start).
+    """
+    out = []
+    for arm, p0 in levels:
+        orr = float(odds_ratio) if arm == "control" else 1.0 / float(odds_ratio)
+        p0d = float(round_level(np.array([p0]))[0])
+        h, _ = _design_h(round(p0d, 6), orr, float(target_arl0))
+        p1 = float(shifted_rate(np.array([p0d]), np.array([orr]))[0])
+        arls = {}
+        for key, truth in (("arl0", p0d), ("arl1", p1)):
+            for suffix, g in (("", 1), ("_cohort", cohort_size)):
+                arls[key + suffix] = float(np.asarray(arl_bernoulli(p0d, p1, h, p_true=truth, group_size=g).arl)[0])
+        out.append({"arm": arm, "p0": p0, "p0_design": p0d, "p1": p1, "h": h, **arls})
+    return out
+
+
+def drift_design_markdown(odds_ratio: float, target_arl0: float, cohort_size: int = 25) -> str:
+    """The README's drift design table (markdown lines), from :func:`drift_design_rows`."""
+    lines = [f"| arm | p0 (designed at) → p1 | h | in-control ARL (per participant / cohorts of {cohort_size}) "
+             f"| ARL after the shift (per participant / cohorts of {cohort_size}) |", "|---|---|---|---|---|"]
+    for r in drift_design_rows(odds_ratio, target_arl0, cohort_size=cohort_size):
+        lines.append(f"| {r['arm']} | {r['p0']:.2f} ({r['p0_design']:.4f}) → {r['p1']:.4f} | {r['h']:.3f} | "
+                     f"{r['arl0']:,.0f} / {r['arl0_cohort']:,.0f} | {r['arl1']:.1f} / {r['arl1_cohort']:.1f} |")
+    return "\n".join(lines)
+
+
+def closed_cohort_counts(cohort: pd.DataFrame, as_of: date, period_days: int, uptake_window_days: int
+                         ) -> pd.DataFrame:
+    """Cohort rows whose uptake window has closed by ``as_of`` (last assignment day + window <= as_of).
+
+    The drift charts run on these only: a cohort still being reported looks like low uptake.
+    """
+    f = _normalise(cohort)
+    if f.empty:
+        return f
+    last_due = pd.to_datetime(f["period_start"]) + pd.Timedelta(days=period_days - 1 + uptake_window_days)
+    return f[(last_due <= pd.Timestamp(as_of)).to_numpy()].reset_index(drop=True)
+
+
 def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], DriftResult]:
     """``uptake_trends`` rows (cohort and calendar bases) and the drift charts.
 
@@ -454,17 +569,22 @@ def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], Drif
        Quality Technology* 31(1), 87-108.
     """
     a = ctx.config.alerts
-    drift = detect_drift(inputs.cohort_counts, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
-                         baseline=a.drift_baseline)
+    closed = closed_cohort_counts(inputs.cohort_counts, ctx.as_of, ctx.config.trends.period_days,
+                                  ctx.config.trends.uptake_window_days)
+    drift = detect_drift(closed, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
+                         baseline=a.drift_baseline, calibration=a.drift_calibration)
     grid = _grid(_normalise(inputs.cohort_counts))
     cv = cl = None
     if len(grid) and len(drift.site_id):
         s_pos = {s: i for i, s in enumerate(drift.site_id[::2])}
         p_pos = {p: j for j, p in enumerate(drift.periods)}
-        si = grid["site_id"].map(s_pos).to_numpy() * 2 + grid["z"].to_numpy()
-        pj = grid["period_start"].map(p_pos).to_numpy()
-        cv = np.asarray(drift.path)[si, pj]
-        cl = np.where(np.isfinite(cv), np.asarray(drift.h)[si], np.nan)
+        si = grid["site_id"].map(s_pos)
+        pj = grid["period_start"].map(p_pos)
+        known = (si.notna() & pj.notna()).to_numpy()
+        si_i = np.where(known, si.fillna(0).to_numpy(int) * 2 + grid["z"].to_numpy(), 0)
+        pj_i = np.where(known, pj.fillna(0).to_numpy(int), 0)
+        cv = np.where(known, np.asarray(drift.path)[si_i, pj_i], np.nan)
+        cl = np.where(np.isfinite(cv), np.asarray(drift.h)[si_i], np.nan)
     _, cohort_rows = trend_rows(inputs.cohort_counts, "cohort", ctx.run_id, cv, cl)
     _, calendar_rows = trend_rows(inputs.calendar_counts, "calendar", ctx.run_id)
     return cohort_rows + calendar_rows, drift

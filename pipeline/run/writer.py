@@ -59,6 +59,7 @@ class RunSummary:
     timings: dict
     message: str | None
     flow_run_id: str | None = None
+    missing_uptake: str | None = None     # one line on participants without an uptake report
 
 
 def _arrow_table(table: str, rows: list[dict]) -> pa.Table:
@@ -127,4 +128,22 @@ def summarise(ctx: RunContext, status: str, inputs: RunInputs | None, counts: di
         by_status[a["status"]] = by_status.get(a["status"], 0) + 1
     return RunSummary(run_id=ctx.run_id, mode=ctx.mode, as_of=ctx.as_of, status=status,
                       n_sites=len(inputs.sites) if inputs else 0, rows=counts, alerts_by_status=by_status,
-                      timings=timings, message=message, flow_run_id=ctx.flow_run_id)
+                      timings=timings, message=message, flow_run_id=ctx.flow_run_id,
+                      missing_uptake=_missing_uptake_line(ctx, inputs))
+
+
+def _missing_uptake_line(ctx: RunContext, inputs: RunInputs | None) -> str | None:
+    """'uptake reports missing: ...' from the cohort counts (None when every participant has one)."""
+    if inputs is None or inputs.cohort_counts is None or len(inputs.cohort_counts) == 0:
+        return None
+    f = inputs.cohort_counts
+    miss = (f["n_assigned"] - f["n_observed"]).groupby(f["z"]).sum()
+    assigned = f["n_assigned"].groupby(f["z"]).sum()
+    mt, mc = int(miss.get(1, 0)), int(miss.get(0, 0))
+    if mt + mc == 0:
+        return None
+    n_sites = int(((f["n_assigned"] - f["n_observed"]) > 0).groupby(f["site_id"]).any().sum())
+    rule = ("left out of the uptake estimates (complete case)" if ctx.config.uptake_missing == "complete_case"
+            else "counted as not taken up")
+    return (f"uptake reports missing: {mt} of {int(assigned.get(1, 0))} treated, {mc} of {int(assigned.get(0, 0))} "
+            f"controls at {n_sites} site(s), {rule}; worst-case complier-share bounds in site_estimates")

@@ -260,6 +260,32 @@ def _trends(d: ReportData) -> str:
     return f'{head}<figure id="uptake-trends">{svg}{caption}</figure></section>'
 
 
+def _missing_uptake(d: ReportData) -> str:
+    """Sites with participants lacking an uptake report, with the worst-case complier-share bounds."""
+    head = "<h3>Missing uptake reports</h3>"
+    s = d.site_estimates
+    if s.empty or "uptake_missing_treatment" not in s.columns:
+        return head + '<p class="empty">No site estimates in this run.</p>'
+    mt = pd.to_numeric(s["uptake_missing_treatment"], errors="coerce").fillna(0)
+    mc = pd.to_numeric(s["uptake_missing_control"], errors="coerce").fillna(0)
+    sub = s[(mt + mc) > 0]
+    if sub.empty:
+        return head + '<p class="empty">Every assigned participant has an uptake report by the cutoff.</p>'
+    rows = [[_e(r.get("site_id")),
+             f'{_int(r.get("uptake_missing_treatment"))} of {_int(r.get("n_treatment_assigned"))}',
+             f'{_int(r.get("uptake_missing_control"))} of {_int(r.get("n_control_assigned"))}',
+             _num(r.get("complier_share")),
+             _interval(r.get("complier_share_bound_low"), r.get("complier_share_bound_high"))]
+            for r in _records(sub)]
+    intro = ("<p>Participants without an uptake report by the cutoff are left out of the uptake estimates "
+             "(complete case) unless the study counts them as not taken up. The bounds are the worst case "
+             "(Manski 1990): every missing report counted as not taken up in one arm and taken up in the other. "
+             "Recent participants may simply not be reported yet.</p>")
+    return head + intro + _table([("Site", False), ("Missing T", True), ("Missing C", True),
+                                  ("Complier share", True), ("Worst-case bounds", True)], rows,
+                                 table_id="missing-uptake-table")
+
+
 def _data_quality(d: ReportData) -> str:
     b = d.batches
     out = ['<section id="data-quality"><h2>Data quality</h2>']
@@ -289,6 +315,7 @@ def _data_quality(d: ReportData) -> str:
         out.append(_table([("Reason", False), ("Field", False), ("Rows", True), ("Files", True)],
                           [[_e(r.get("reason")), _e(r.get("field")) or "(whole row)", _int(r.get("n_rows")),
                             _int(r.get("n_batches"))] for r in _records(q)], table_id="quarantine-table"))
+    out.append(_missing_uptake(d))
     out.append("<h3>Stale sites</h3>")
     a = d.alerts
     stale = a[(a["rule"] == "stale_site") & a["status"].isin(ACTIVE_STATUSES)] if not a.empty else a

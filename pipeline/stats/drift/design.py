@@ -1,27 +1,31 @@
 """Choosing the Bernoulli CUSUM's threshold ``h`` for a target in-control ARL.
 
-Default design for uptake monitoring
-------------------------------------
-Both charts aim at a doubling (contamination) or halving (non-delivery) of
-the *odds* of uptake -- ``odds_ratio = 2`` and ``0.5``
-(:data:`DEFAULT_ODDS_RATIO_RISE`, :data:`DEFAULT_ODDS_RATIO_FALL`) -- with
-``h`` chosen by :func:`design_cusum` so that the *per-participant* chart
-has an in-control ARL of at least ``DEFAULT_TARGET_ARL0 = 1000``
-participants.  The odds scale makes one shift size meaningful at any
-baseline rate (a 5 % control uptake becoming 9.5 %, a 70 % treatment uptake
-becoming 54 %).  Designing the per-participant chart is deliberate: the
+Function defaults and the study's design
+----------------------------------------
+The keyword defaults of :func:`design_cusum` -- a doubling / halving of the
+*odds* of uptake (:data:`DEFAULT_ODDS_RATIO_RISE` = 2,
+:data:`DEFAULT_ODDS_RATIO_FALL` = 0.5) and an in-control ARL of at least
+:data:`DEFAULT_TARGET_ARL0` = 1000 participants -- are generic defaults of
+this function only.  A monitoring run does not use them: it designs every
+chart with the study's ``[alerts] drift_odds_ratio`` (default **3**) and
+``drift_arl0`` (default **2000**), at each site x arm's in-control level
+rounded on the logit scale; the README's design table at the demo's levels
+is generated from that path (``takeup.pipeline.run.trend_rows.
+drift_design_markdown``) and compared with the README by the tests.
+
+The odds scale makes one shift size meaningful at any baseline rate.
+Designing the per-participant chart is deliberate: the
 chart run on weekly cohorts resets at zero only between periods, so at
 every period end its statistic is at most the per-participant one
 (``max(0, .)`` is monotone and applied less often) and it cannot signal
-earlier.  Its in-control ARL is therefore at least the designed 1000 *for
-any cohort sizes*, and in practice several times more.  The floor of 1000
-is a starting point: with a near-geometric run length (an approximation,
-common practice) a chart followed over ``N`` in-control participants
-false-alarms with probability about ``1 - exp(-N / ARL0)``, so raise
-``target_arl0`` for large site-arms or many charts -- the delay grows only
-with ``log(ARL0)``.
+earlier.  Its in-control ARL is therefore at least the designed target *for
+any cohort sizes*, and in practice several times more.  With a
+near-geometric run length (an approximation, common practice) a chart
+followed over ``N`` in-control participants false-alarms with probability
+about ``1 - exp(-N / ARL0)`` *when the in-control level is known*; an
+estimated level (a few baseline weeks) raises that rate, see the README.
 
-Thresholds chosen by :func:`design_cusum` for this default, and the ARLs
+Thresholds chosen by :func:`design_cusum` for its function defaults (OR 2, ARL0 1000), and the ARLs
 they give, computed with :func:`arl_bernoulli` (Markov chain, in
 participants; ARL0 in control, ARL1 = zero-state detection delay with the
 planted shift ``p1`` present from the start), for the per-participant chart
@@ -62,10 +66,10 @@ import numpy as np
 
 from takeup.pipeline.stats.drift.chart import _param_note, _readonly, shifted_rate
 from takeup.pipeline.stats.drift.run_length import (_DEFAULT_MAX_STATES, _DEFAULT_REL_TOL, _chain_arl, _grid,
-                                                    _n_states, _steps)
+                                                    _n_states, _steps, arl_bernoulli)
 
 __all__ = ["DEFAULT_ODDS_RATIO_RISE", "DEFAULT_ODDS_RATIO_FALL", "DEFAULT_TARGET_ARL0", "CusumDesign",
-           "design_cusum"]
+           "design_cusum", "calibrate_for_estimated_level"]
 
 #: Odds ratio the contamination (control-arm, upward) chart is tuned to detect.
 DEFAULT_ODDS_RATIO_RISE = 2.0
@@ -254,3 +258,90 @@ def design_cusum(
         group_size=group_size,
         notes=tuple(notes),
     )
+
+
+def calibrate_for_estimated_level(p0: float, p1: float, h_known: float, target_arl0: float, logit_sd: float,
+                                  *, n_nodes: int = 7, rel_tol: float = 1e-4, h_tol: float = 1e-3,
+                                  max_states: int = 50_000, h_max_factor: float = 4.0) -> float:
+    r"""Decision limit for a chart whose in-control level ``p0`` is itself an estimate.
+
+    A chart designed at an estimated level signals falsely more often than its design says:
+    when the estimate is below the true level, an upward chart drifts up in control (and a
+    downward chart likewise when it is above).  Averaged over the estimation error, the
+    per-participant false-alarm rate :math:`E[1/\mathrm{ARL}]` exceeds :math:`1/\mathrm{ARL}_0`.
+    This function raises ``h`` until the *expected* false-alarm rate is the designed one:
+
+    .. math:: \sum_k \omega_k / \mathrm{ARL}(h;\ p_0, p_1,\ p_{\mathrm{true}} =
+              \mathrm{expit}(\mathrm{logit}\,p_0 + \sqrt2\,s\,x_k)) = 1/\mathrm{ARL}_0,
+
+    with Gauss-Hermite nodes :math:`x_k` and weights :math:`\omega_k/\sqrt\pi` (``n_nodes``),
+    i.e. the true in-control level is treated as uncertain around the estimate with standard
+    deviation ``s = logit_sd`` on the logit scale (a parametric-bootstrap view: the plausible
+    true levels given the fitted baseline, its sample size and its shrinkage).  ARLs are exact
+    (Markov chain, :func:`arl_bernoulli`), in participants.
+
+    Parameters
+    ----------
+    p0, p1 : float
+        Design level (the estimate) and out-of-control level of the chart.
+    h_known : float
+        Limit designed for a known level (lower bracket: the calibrated ``h`` is at least this).
+    target_arl0 : float
+        Designed in-control ARL, in participants.
+    logit_sd : float
+        Standard deviation of the in-control level's estimation error, logit scale; 0 returns
+        ``h_known``.
+
+    max_states : int
+        Cap on the Markov chain's size per ARL (coarser grid beyond it, see :func:`arl_bernoulli`).
+    h_max_factor : float
+        The limit is not raised beyond ``h_max_factor * h_known`` (a level estimated from a handful
+        of reports cannot be rescued by the limit alone; the chart's note says so).
+
+    Returns
+    -------
+    float
+        The calibrated limit (``h_known`` when ``logit_sd`` is 0 or not finite).
+
+    Notes
+    -----
+    Control charts with estimated parameters and their inflated false-alarm rates are a
+    studied topic (for instance Jones, Champ & Rigdon 2004 on the CUSUM, and bootstrap-based
+    limits in the spirit of Gandy & Kvaløy 2013 -- both cited from memory, not checked);
+    this calibration is this project's own, checked by simulation in
+    ``tests/test_drift_calibration.py``.
+    """
+    if not (np.isfinite(logit_sd) and logit_sd > 0):
+        return float(h_known)
+    x, w = np.polynomial.hermite.hermgauss(int(n_nodes))
+    w = w / np.sqrt(np.pi)
+    lp = np.log(p0) - np.log1p(-p0)
+    p_true = 1.0 / (1.0 + np.exp(-(lp + np.sqrt(2.0) * logit_sd * x)))
+    p_true = np.clip(p_true, 1e-6, 1 - 1e-6)
+
+    def rate(h: float) -> float:
+        arl = np.asarray(arl_bernoulli(p0, p1, h, p_true=p_true, rel_tol=rel_tol, max_states=max_states).arl,
+                         dtype=float)
+        return float(np.sum(w / np.maximum(arl, 1.0)))
+
+    goal = 1.0 / float(target_arl0)
+    lo, hi = float(h_known), float(h_known)
+    if rate(lo) <= goal:
+        return lo
+    cap = float(h_max_factor) * float(h_known)
+    step = 0.25 * max(lo, 1.0)
+    while True:                              # bracket: the expected false-alarm rate falls as h grows
+        hi = min(hi + step, cap)
+        if rate(hi) <= goal:
+            break
+        if hi >= cap:
+            return cap
+        lo = hi
+        step *= 1.5
+    while hi - lo > h_tol * hi:
+        mid = 0.5 * (lo + hi)
+        if rate(mid) <= goal:
+            hi = mid
+        else:
+            lo = mid
+    return float(hi)

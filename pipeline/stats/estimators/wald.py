@@ -95,8 +95,14 @@ class WaldEstimates:
         Anderson-Rubin set.
     cace, cace_se, cace_ci_low, cace_ci_high : ndarray
         Wald estimate ``gamma / pi`` (= just-identified 2SLS), its standard
-        error and the conventional interval ``cace -/+ z * cace_se`` with the
-        normal critical value for ``level``.
+        error and the conventional interval ``cace -/+ c * cace_se``: ``c`` is
+        the normal critical value for ``level`` under HC1 and the t(G - 1)
+        critical value under CR1 (``ci_df``).
+    itt_ci_low, itt_ci_high, complier_share_ci_low, complier_share_ci_high : ndarray
+        The same intervals for the ITT and the complier share.
+    ci_df : ndarray
+        Degrees of freedom of the t reference (``G - 1`` under CR1; NaN under
+        HC1, where the reference is normal).
     first_stage_f : ndarray
         ``(pi_hat / se(pi_hat))**2`` with the robust (HC1) or cluster-robust
         (CR1) standard error: the Wald statistic of the excluded instrument in
@@ -129,6 +135,11 @@ class WaldEstimates:
     cace_ci_high: np.ndarray
     first_stage_f: np.ndarray
     n_clusters: np.ndarray
+    itt_ci_low: np.ndarray
+    itt_ci_high: np.ndarray
+    complier_share_ci_low: np.ndarray
+    complier_share_ci_high: np.ndarray
+    ci_df: np.ndarray
     se_type: str
     level: float
     status: np.ndarray
@@ -207,7 +218,7 @@ def _cluster_scores(m: SiteMoments, cl: ClusterMoments, ybar: tuple, dbar: tuple
 
 
 def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
-                   level: float = 0.95) -> WaldEstimates:
+                   level: float = 0.95, min_clusters_per_arm: int = 2) -> WaldEstimates:
     r"""ITT, complier share and CACE per site, with robust or cluster-robust SEs.
 
     Parameters
@@ -219,6 +230,10 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
         cluster-robust (CR1); otherwise heteroskedasticity-robust (HC1).
     level : float
         Confidence level of the conventional CACE interval.
+    min_clusters_per_arm : int
+        Under CR1, a site with fewer clusters than this in an arm gets status
+        ``too_few_clusters`` (SEs, intervals and F undefined).  At least 2: with
+        one cluster in an arm the cluster-robust variance is degenerate.
 
     Returns
     -------
@@ -276,7 +291,8 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
     ``arm_too_small``
         an arm has a single participant: point estimates only, SEs NaN.
     ``too_few_clusters``
-        fewer than 2 clusters in an arm (CR1 only): SEs, interval and F NaN.
+        fewer than ``min_clusters_per_arm`` clusters in an arm (CR1 only):
+        SEs, intervals and F NaN.
     ``zero_first_stage``
         equal uptake in both arms: CACE, its SE and interval NaN.
     ``negative_first_stage``
@@ -316,6 +332,8 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
     """
     if not (0.0 < level < 1.0):
         raise ValueError(f"level must be strictly between 0 and 1, got {level!r}")
+    if int(min_clusters_per_arm) < 2:
+        raise ValueError(f"min_clusters_per_arm must be at least 2, got {min_clusters_per_arm!r}")
     t, c = m.treated, m.control
     k = m.n_sites
     n1, n0 = t.n, c.n
@@ -385,7 +403,7 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
             bb = np.where(np.isfinite(beta), beta, 0.0)
             v_u = np.maximum(s_yy - 2 * bb * s_yd + bb**2 * s_dd, 0.0)
             n_clusters = np.where(invalid, nan, g)
-            few_clusters = both_arms & ~small & (min_per_arm < 2)
+            few_clusters = both_arms & ~small & (min_per_arm < int(min_clusters_per_arm))
 
         no_se = ~both_arms | small | few_clusters
         v_g = np.where(no_se, nan, factor * v_g)
@@ -405,9 +423,15 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
         itt_se = np.sqrt(v_g)
         fs_se = np.sqrt(v_p)
         cace_se = np.sqrt(v_b)
-        zcrit = stats.norm.ppf(0.5 + level / 2.0)
-        ci_lo = beta - zcrit * cace_se
-        ci_hi = beta + zcrit * cace_se
+        if clusters is None:
+            ci_df = np.full(k, nan)
+            crit = np.full(k, stats.norm.ppf(0.5 + level / 2.0))
+        else:
+            ci_df = np.where(np.isfinite(n_clusters) & (n_clusters >= 2), n_clusters - 1.0, nan)
+            crit = stats.t.ppf(0.5 + level / 2.0, np.where(np.isfinite(ci_df), ci_df, 1.0))
+            crit = np.where(np.isfinite(ci_df), crit, nan)
+        ci_lo = beta - crit * cace_se
+        ci_hi = beta + crit * cace_se
         f = np.where(np.isnan(v_p), nan, pi**2 / np.where(np.isnan(v_p), 1.0, v_p))
 
     flags = [
@@ -419,8 +443,8 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
         (no_c & ~no_t, "no_controls", "no participants in the control arm: ITT, complier "
                                       "share and CACE undefined"),
         (small, "arm_too_small", "an arm has a single participant: standard errors undefined"),
-        (few_clusters, "too_few_clusters", "fewer than 2 clusters in an arm: cluster-robust "
-                                           "standard errors, CACE interval and F undefined"),
+        (few_clusters, "too_few_clusters", f"fewer than {int(min_clusters_per_arm)} clusters in an arm: "
+                                           "cluster-robust standard errors, intervals and F not available"),
         (zero_fs, "zero_first_stage", "first stage is zero (equal uptake in both arms): "
                                       "CACE undefined"),
         (neg_fs, "negative_first_stage", "uptake is lower in the treatment arm than in "
@@ -452,6 +476,11 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
         cace_ci_high=_readonly(ci_hi),
         first_stage_f=_readonly(f),
         n_clusters=_readonly(n_clusters),
+        itt_ci_low=_readonly(gamma - crit * itt_se),
+        itt_ci_high=_readonly(gamma + crit * itt_se),
+        complier_share_ci_low=_readonly(pi - crit * fs_se),
+        complier_share_ci_high=_readonly(pi + crit * fs_se),
+        ci_df=_readonly(ci_df),
         se_type=se_type,
         level=float(level),
         status=status,

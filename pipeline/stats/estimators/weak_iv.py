@@ -96,7 +96,7 @@ def anderson_rubin_statistic(beta0, itt, fs, var_itt, var_fs, cov) -> np.ndarray
     return _ro(out)
 
 
-def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95, critical=None) -> ARSet:
+def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95, critical=None, df=None) -> ARSet:
     r"""Closed-form Anderson-Rubin confidence set for the CACE, per site.
 
     Parameters
@@ -116,6 +116,13 @@ def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95, criti
         (for example the squared multiplier of an anytime-valid confidence
         sequence, :mod:`takeup.pipeline.stats.sequential`); ``level`` is then
         only recorded.
+    df : array_like, optional
+        Degrees of freedom of a t reference, one per site (NaN: none).  Where
+        given, :math:`q` is the ``level`` quantile of :math:`F(1, df)` (the
+        square of the t(df) critical value) instead of chi-square(1): with
+        cluster-robust variances and few clusters, the reference that matches
+        the t(G - 1) Wald intervals (Cameron & Miller 2015, section VI).
+        Ignored when ``critical`` is given.
 
     Returns
     -------
@@ -159,6 +166,8 @@ def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95, criti
     .. [3] Andrews, I., Stock, J. H. and Sun, L. (2019). Weak instruments in
        instrumental variables regression: theory and practice. Annual Review
        of Economics, 11, 727-753.
+    .. [4] Cameron, A. C. and Miller, D. L. (2015). A practitioner's guide to
+       cluster-robust inference. Journal of Human Resources, 50(2), 317-372.
     """
     if not (0.0 < level < 1.0):
         raise ValueError(f"level must be strictly between 0 and 1, got {level!r}")
@@ -168,6 +177,11 @@ def anderson_rubin_set(itt, fs, var_itt, var_fs, cov, level: float = 0.95, criti
     else:
         g, p, vg, vp, cv, q = _broadcast_inputs(itt, fs, var_itt, var_fs, cov, critical)
     n = g.shape[0]
+    if critical is None and df is not None:
+        q = np.full(n, stats.chi2.ppf(level, 1))
+        dfa = np.broadcast_to(np.asarray(df, dtype=float), (n,))
+        has_df = np.isfinite(dfa) & (dfa > 0)
+        q = np.where(has_df, stats.f.ppf(level, 1, np.where(has_df, dfa, 1.0)), q)
     nan = np.nan
     eps = np.finfo(float).eps
     with np.errstate(all="ignore"):
