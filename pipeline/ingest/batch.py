@@ -288,7 +288,7 @@ def _read_failure(exc: duckdb.Error, path: Path, fmt: str) -> Exception:
     if line is not None:
         return IngestError(f"{name}: line {line}: a quoted value is never closed (unterminated quote); "
                            "the file cannot be split into rows")
-    if "unicode" in text.lower() or "utf" in text.lower():
+    if "invalid unicode" in text.lower():
         return IngestError(f"{name}: the file is not UTF-8 text")
     return IngestError(f"{name}: cannot read the file as CSV (comma-separated, double quotes, a header line)")
 
