@@ -29,8 +29,8 @@ Reason codes (the ``quarantine.reason`` column):
 
 Identifiers (``site_id``, ``participant_id``, ``cluster_id``, ``stratum``) are
 normalised before anything else: Unicode NFC, then leading and trailing
-white space (blanks, tabs, line breaks) removed; every other text field is
-trimmed the same way.  Values that may be identifiers in the wrong column
+white space (blanks, tabs, line breaks) removed; every other field loses
+leading and trailing blanks.  Values that may be identifiers in the wrong column
 are never copied to ``quarantine.offending_value``: a site not in the
 registry, a number that does not parse, a text that is too long, and every
 identifier.
@@ -96,11 +96,16 @@ def is_numeric_type(dtype: str) -> bool:
 
 
 def _raw_text(col: str, dtype: str) -> str:
-    """Raw column as trimmed text (identifiers also NFC-normalised) with '' turned into NULL."""
+    """Raw column as trimmed text with '' turned into NULL.
+
+    Identifiers are NFC-normalised and trimmed of every white-space character (they are
+    hashed: a stray tab would make another participant); other fields lose blanks only
+    (trimming the whole set costs 3x as much, and a tab in a date or number is reported).
+    """
     text = _q(col) if dtype == "VARCHAR" else f"CAST({_q(col)} AS VARCHAR)"
     if col in ID_COLUMNS:
-        text = f"nfc_normalize({text})"
-    return f"NULLIF(trim({text}, {_SPACE}), '')"
+        return f"NULLIF(trim(nfc_normalize({text}), {_SPACE}), '')"
+    return f"NULLIF(trim({text}), '')"
 
 
 def _parse_expr(spec: ColumnSpec, raw: str, dtype: str) -> str:
