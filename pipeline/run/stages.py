@@ -33,7 +33,6 @@ from pathlib import Path
 from typing import Any, Callable, Iterator, Protocol, Sequence
 
 import duckdb
-import numpy as np
 
 from takeup.pipeline.run.alert_rules import compute_alerts
 from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, collect_inputs, new_run_context
