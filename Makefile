@@ -21,7 +21,7 @@ install-test: $(PY)
 	$(PY) -m pip install --quiet -e ".[test]"
 
 demo: install
-	$(VENV)/bin/takeup demo --out sample_warehouse
+	$(VENV)/bin/takeup demo --out sample_warehouse --force
 
 test: install-test
 	$(PY) -m pytest -q -p no:cacheprovider tests

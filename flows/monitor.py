@@ -23,7 +23,7 @@ from prefect.runtime import flow_run as runtime_flow_run
 from takeup.flows.runners import make_task_runner
 from takeup.pipeline.run import stages as core
 from takeup.pipeline.run import writer
-from takeup.pipeline.run.inputs import RunContext, RunInputs, collect_inputs, new_run_context
+from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, collect_inputs, new_run_context
 from takeup.pipeline.warehouse import connect
 from takeup.schemas.config import StudyConfig, parse_config
 
@@ -99,12 +99,13 @@ def run_orchestrated(warehouse: Path | str, as_of: date | None = None, config: S
                      runner: str | None = None, dask_address: str | None = None):
     """Execute :func:`monitor_flow` through Prefect with the chosen task runner."""
     cfg_for_runner = config
-    if cfg_for_runner is None:
-        con = connect(warehouse, read_only=False)
-        try:
+    con = connect(warehouse, read_only=False)
+    try:
+        check_as_of(con, as_of)            # a usage error, before any task (and its retries) starts
+        if cfg_for_runner is None:
             cfg_for_runner = core.resolve_config(con, None)
-        finally:
-            con.close()
+    finally:
+        con.close()
     task_runner = make_task_runner(cfg_for_runner, runner, dask_address)
     f = monitor_flow.with_options(task_runner=task_runner)
     return f(str(warehouse), as_of.isoformat() if as_of else None,

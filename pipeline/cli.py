@@ -1,7 +1,10 @@
 """Command line: ``takeup <command> ...`` (argument parsing and printing only).
 
 Exit codes: 0 success; 1 data problems reported (rejected files, quarantined
-rows, a run that finished with errors); 2 usage or configuration error.
+rows, a run that finished with errors); 2 usage or configuration error;
+3 internal error (a bug: one line, the traceback only with ``--log-level
+debug``); 4 the machine refused (out of memory, disk full, permission denied).
+Every failure is one line on stderr.
 """
 
 from __future__ import annotations
@@ -18,7 +21,7 @@ from pathlib import Path
 
 __all__ = ["main"]
 
-EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
+EXIT_OK, EXIT_DATA, EXIT_USAGE, EXIT_INTERNAL, EXIT_INFRA = 0, 1, 2, 3, 4
 
 log = logging.getLogger("takeup")
 
@@ -48,11 +51,26 @@ def _date(text: str) -> date:
         raise argparse.ArgumentTypeError(f"not an ISO date (YYYY-MM-DD): {text!r}") from None
 
 
+def _mode(text: str) -> int:
+    try:
+        mode = int(text, 8)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not an octal file mode such as 600 or 640: {text!r}") from None
+    if not 0 <= mode <= 0o777:
+        raise argparse.ArgumentTypeError(f"a file mode lies between 000 and 777: {text!r}")
+    return mode
+
+
+def _mode_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--mode", type=_mode, default=0o600, metavar="OCTAL",
+                   help="permission bits of the written file(s) (default 600: owner only)")
+
+
 def _warehouse_arg(p: argparse.ArgumentParser) -> None:
     p.add_argument("--warehouse", type=Path, default=None, metavar="PATH",
                    help="DuckDB warehouse file (default: $TAKEUP_WAREHOUSE, else ./takeup.duckdb)")
     p.add_argument("--log-level", default="warning", choices=["debug", "info", "warning", "error"],
-                   help="logging verbosity (default: warning)")
+                   help="logging verbosity on stderr (default: warning; debug adds tracebacks of internal errors)")
     p.add_argument("--quiet", action="store_true", help="print only errors and the final summary")
 
 
@@ -85,6 +103,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-run", action="store_true", help="only generate and ingest")
     p.add_argument("--in-process", action="store_true",
                    help="run the monitoring in process instead of as a Prefect flow")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing demo warehouse, OUT/incoming and OUT/study.toml (refused otherwise)")
 
     p = sub.add_parser("run", help="compute a monitoring run",
                        description="Estimate per site and pooled, follow uptake trends and raise alerts as of a "
@@ -122,6 +142,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True, help="output directory")
     p.add_argument("--format", choices=["parquet", "csv"], default="parquet")
     p.add_argument("--run", help="run id (default: the latest finished run)")
+    _mode_arg(p)
 
     p = sub.add_parser("report", help="write the HTML report of a run",
                        description="One self-contained HTML file for programme managers.")
@@ -134,6 +155,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--influential-sites", type=int, default=10, metavar="N",
                    help="more than 40 sites: and for the N other sites whose removal moves the pooled CACE most "
                         "(default 10)")
+    _mode_arg(p)
 
     p = sub.add_parser("serve", help="serve the ingest and monitoring flows on the study's schedule",
                        description="Register both flows as Prefect deployments with the cron schedule of the "
@@ -156,7 +178,12 @@ def _orchestration_args(p: argparse.ArgumentParser) -> None:
 
 
 def _setup_logging(level: str) -> None:
-    logging.basicConfig(level=getattr(logging, level.upper()), format="%(levelname)s %(name)s: %(message)s")
+    """Log records of the ``takeup`` logger at ``level`` and above to stderr."""
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(levelname)s %(name)s: %(message)s"))
+    log.handlers[:] = [handler]
+    log.setLevel(getattr(logging, level.upper()))
+    log.propagate = False
 
 
 def _warehouse(args) -> Path:
@@ -220,6 +247,7 @@ def _ingest_paths(warehouse: Path, files, kind, quiet: bool):
 
 
 def cmd_ingest(args) -> int:
+    log.info("ingest: %d path(s) into %s", len(args.files), _warehouse(args))
     reports = _ingest_paths(_warehouse(args), args.files, args.kind, args.quiet)
     return _print_reports(reports, args.quiet)
 
@@ -230,8 +258,14 @@ def cmd_demo(args) -> int:
     from takeup.schemas.config import load_config
     out: Path = args.out
     warehouse = args.warehouse if args.warehouse is not None else out / "demo.duckdb"
+    existing = [p for p in (warehouse, Path(str(warehouse) + ".wal"), out / "incoming", out / "study.toml")
+                if p.exists() or p.is_symlink()]
+    if existing and not args.force:
+        raise UsageError("the demo would replace " + ", ".join(str(p) for p in existing)
+                         + "; pass --force to replace them, or choose another --out / --warehouse")
     print(f"generating the demo scenario under {out} ...")
-    manifest = generate_demo(out, seed=args.seed if args.seed is not None else DEMO_SEED)
+    log.info("demo: seed %s, output %s, warehouse %s", args.seed, out, warehouse)
+    manifest = generate_demo(out, seed=args.seed if args.seed is not None else DEMO_SEED, replace=args.force)
     for suffix in ("", ".wal"):
         p = Path(str(warehouse) + suffix)
         if p.exists():
@@ -441,7 +475,7 @@ def cmd_export(args) -> int:
     from takeup.pipeline.warehouse import connect
     con = connect(_warehouse(args), read_only=True)
     try:
-        paths = export_tables(con, args.out, fmt=args.format, run_id=args.run)
+        paths = export_tables(con, args.out, fmt=args.format, run_id=args.run, mode=args.mode)
     finally:
         con.close()
     for p in paths:
@@ -457,7 +491,7 @@ def cmd_report(args) -> int:
         if args.flagged_sites < 0 or args.influential_sites < 0:
             raise UsageError("--flagged-sites and --influential-sites must be 0 or more")
         path = render_report(con, args.out, args.run, max_flagged=args.flagged_sites,
-                             n_influential=args.influential_sites)
+                             n_influential=args.influential_sites, mode=args.mode)
     finally:
         con.close()
     print(f"report: {path}")
@@ -476,27 +510,53 @@ COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd
             "alerts": cmd_alerts, "reproduce": cmd_reproduce, "export": cmd_export, "report": cmd_report, "serve": cmd_serve}
 
 
+def _one_line(exc: BaseException) -> str:
+    lines = str(exc).strip().splitlines()
+    return " ".join(x.strip() for x in lines) if lines else type(exc).__name__
+
+
 def main(argv: list[str] | None = None) -> int:
-    from takeup.pipeline.errors import (ExportError, IngestError, ReportError, ReproduceError, RunnerError,
-                                 WarehouseError)
+    from takeup.pipeline.errors import (ExportError, InfrastructureError, IngestError, OptionError, ReportError,
+                                        ReproduceError, RunnerError, WarehouseError, infrastructure_problem)
+    from takeup.pipeline.pseudonym import PseudonymKeyError
     from takeup.schemas.config import ConfigError
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.log_level)
+    where = f"takeup {args.command}"
     try:
         return COMMANDS[args.command](args)
-    except (ConfigError, UsageError) as exc:
-        print(f"takeup {args.command}: {exc}", file=sys.stderr)
+    except (ConfigError, UsageError, OptionError, RunnerError, PseudonymKeyError) as exc:
+        print(f"{where}: {_one_line(exc)}", file=sys.stderr)
         return EXIT_USAGE
-    except (WarehouseError, FileNotFoundError, ExportError, ReportError, RunnerError, ReproduceError) as exc:
-        print(f"takeup {args.command}: {exc}", file=sys.stderr)
+    except (WarehouseError, ExportError, ReportError, ReproduceError) as exc:
+        print(f"{where}: {_one_line(exc)}", file=sys.stderr)
         return EXIT_USAGE
     except IngestError as exc:
-        print(f"takeup {args.command}: {exc}", file=sys.stderr)
+        print(f"{where}: {_one_line(exc)}", file=sys.stderr)
         return EXIT_DATA
+    except InfrastructureError as exc:
+        print(f"{where}: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_INFRA
     except KeyboardInterrupt:
         print("interrupted; every batch and run is atomic, nothing half-written was kept", file=sys.stderr)
         return 130
+    except Exception as exc:  # the one boundary: anything else is reported in one line
+        problem = infrastructure_problem(exc)
+        if problem:
+            hint = "; raise TAKEUP_MEMORY_LIMIT or free memory" if problem == "out of memory" else ""
+            print(f"{where}: {problem}{hint} ({type(exc).__name__}); nothing half-written was kept",
+                  file=sys.stderr)
+            log.debug("traceback", exc_info=True)
+            return EXIT_INFRA
+        if isinstance(exc, FileNotFoundError):
+            print(f"{where}: no such file or directory: {exc.filename}", file=sys.stderr)
+            return EXIT_USAGE
+        # the exception's text is not printed: it may quote data; --log-level debug shows everything
+        print(f"{where}: internal error ({type(exc).__name__}); this is a bug in takeup. "
+              "Run again with --log-level debug for the traceback", file=sys.stderr)
+        log.debug("internal error", exc_info=True)
+        return EXIT_INTERNAL
 
 
 if __name__ == "__main__":  # pragma: no cover

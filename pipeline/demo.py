@@ -169,19 +169,26 @@ def _write(frame: pd.DataFrame, path: Path, parquet: bool) -> Path:
     return path
 
 
-def generate_demo(root: Path | str, seed: int = DEMO_SEED) -> DemoManifest:
+def generate_demo(root: Path | str, seed: int = DEMO_SEED, replace: bool = False) -> DemoManifest:
     """Write the demo's study config and weekly upload files under ``root``.
 
     ``root/study.toml`` and ``root/incoming/week_NN/<centre>_<kind>.csv|parquet``
-    (centres of the East region send Parquet).  Existing generated files under
-    ``root/incoming`` are replaced.  Returns the files in upload order.
+    (centres of the East region send Parquet).  An existing ``root/incoming`` or
+    ``root/study.toml`` is replaced only with ``replace=True`` (else FileExistsError).
+    Returns the files in upload order.
     """
     root = Path(root)
     incoming = root / "incoming"
-    if incoming.exists():
+    config_path = root / "study.toml"
+    present = [p for p in (incoming, config_path) if p.exists() or p.is_symlink()]
+    if present and not replace:
+        raise FileExistsError(f"the demo would replace {', '.join(map(str, present))}; pass replace=True")
+    if incoming.is_symlink():
+        incoming.unlink()
+    elif incoming.exists():
         shutil.rmtree(incoming)
     root.mkdir(parents=True, exist_ok=True)
-    config_path = root / "study.toml"
+    config_path.unlink(missing_ok=True)
     config_path.write_text(_config_toml())
     rng = np.random.default_rng(seed)
     df = _simulate(rng)

@@ -5,6 +5,8 @@ from __future__ import annotations
 from takeup.pipeline.errors import WarehouseError  # noqa: F401  (re-exported)
 
 import os
+import shutil
+import tempfile
 from contextlib import contextmanager
 from datetime import datetime, timezone
 from pathlib import Path
@@ -12,17 +14,21 @@ from typing import Iterator
 
 import duckdb
 
-from takeup.pipeline.pseudonym import PseudonymKey, create_key_file, load_key
+from takeup.pipeline.pseudonym import (PseudonymKey, create_key_file, key_check_matches, legacy_fingerprint, load_key,
+                                       make_key_check)
 from takeup.schemas.config import StudyConfig, parse_config
 from takeup.schemas.ddl import create_table_sql
 from takeup.schemas.records import STORAGE_TABLES
 
 __all__ = [
     "WarehouseError", "SCHEMA_VERSION", "default_warehouse_path", "init_warehouse", "connect",
-    "stored_config", "store_config", "check_key", "all_table_models", "transaction",
+    "stored_config", "store_config", "check_key", "all_table_models", "transaction", "private_umask",
+    "temp_dir_for", "memory_connection",
 ]
 
-SCHEMA_VERSION = "1"
+#: 2: salted scrypt key check instead of the unsalted fingerprint; length-prefixed pseudonym messages
+#: for new warehouses (older ones keep theirs, recorded as ``pseudonym_encoding``); see check_key
+SCHEMA_VERSION = "2"
 
 
 
@@ -60,18 +66,67 @@ def _create_tables(con: duckdb.DuckDBPyConnection) -> None:
 DEFAULT_MEMORY_LIMIT = "1200MB"
 
 
+def private_umask() -> None:
+    """Deny group and others every file this process creates from now on (umask |= 077).
+
+    DuckDB creates the ``.wal`` file and its spill files long after the connection
+    is opened, so the umask is set for the process rather than around ``connect``.
+    """
+    current = os.umask(0o077)
+    os.umask(current | 0o077)
+
+
+def temp_dir_for(warehouse: Path) -> Path:
+    """The private (0700) directory DuckDB spills to for ``warehouse``: ``<warehouse>.tmp``."""
+    d = warehouse.with_name(warehouse.name + ".tmp")
+    if d.is_symlink():
+        raise WarehouseError(f"{d} is a symbolic link; takeup keeps spill files only in a private directory")
+    try:
+        d.mkdir(mode=0o700, exist_ok=True)
+        os.chmod(d, 0o700)
+    except OSError as exc:
+        raise WarehouseError(f"cannot prepare the private spill directory {d}: {exc.strerror}") from None
+    return d
+
+
+def _memory_limit() -> str:
+    return os.environ.get("TAKEUP_MEMORY_LIMIT", DEFAULT_MEMORY_LIMIT)
+
+
+@contextmanager
+def memory_connection() -> Iterator[duckdb.DuckDBPyConnection]:
+    """An in-memory DuckDB connection that spills only to a fresh private (0700) directory, removed after."""
+    private_umask()
+    d = tempfile.mkdtemp(prefix="takeup-spill-")
+    try:
+        con = duckdb.connect(":memory:", config={"memory_limit": _memory_limit(), "temp_directory": d})
+        try:
+            yield con
+        finally:
+            con.close()
+    finally:
+        shutil.rmtree(d, ignore_errors=True)
+
+
 def connect(path: Path | str, read_only: bool = False) -> duckdb.DuckDBPyConnection:
-    """Open an existing warehouse (tables are created if a newer version added some)."""
+    """Open an existing warehouse (tables are created if a newer version added some).
+
+    The process umask becomes restrictive (:func:`private_umask`) and DuckDB spills to the
+    private directory :func:`temp_dir_for`.
+    """
     p = Path(path)
     if not p.exists():
         raise WarehouseError(f"warehouse {p} does not exist; create it with 'takeup init --warehouse {p}'")
-    limit = os.environ.get("TAKEUP_MEMORY_LIMIT", DEFAULT_MEMORY_LIMIT)
+    private_umask()
+    limit = _memory_limit()
+    config = {"memory_limit": limit, "temp_directory": str(temp_dir_for(p))}
     try:
-        con = duckdb.connect(str(p), read_only=read_only, config={"memory_limit": limit})
+        con = duckdb.connect(str(p), read_only=read_only, config=config)
     except duckdb.IOException as exc:
-        raise WarehouseError(f"cannot open warehouse {p}: {exc}") from None
+        raise WarehouseError(f"cannot open warehouse {p}: {str(exc).splitlines()[0]}") from None
     except duckdb.Error as exc:
-        raise WarehouseError(f"cannot open warehouse {p} with memory limit {limit!r}: {exc}") from None
+        raise WarehouseError(f"cannot open warehouse {p} with memory limit {limit!r}: "
+                             f"{str(exc).splitlines()[0]}") from None
     if not read_only:
         _create_tables(con)
     return con
@@ -89,23 +144,19 @@ def init_warehouse(path: Path | str, config: StudyConfig | None = None) -> tuple
     if not os.environ.get("TAKEUP_ID_KEY"):
         key_path = create_key_file(p)
     key = load_key(p)
-    old_umask = os.umask(0o077)
-    try:
-        con = duckdb.connect(str(p))
-    finally:
-        os.umask(old_umask)
+    private_umask()
+    con = duckdb.connect(str(p), config={"memory_limit": _memory_limit(), "temp_directory": str(temp_dir_for(p))})
     try:
         os.chmod(p, 0o600)
         _create_tables(con)
+        meta = dict(con.execute("SELECT key, value FROM warehouse_meta").fetchall())
+        if meta:
+            check_key(con, key, p)
         with transaction(con):
-            meta = dict(con.execute("SELECT key, value FROM warehouse_meta").fetchall())
-            if "key_fingerprint" in meta and meta["key_fingerprint"] != key.fingerprint():
-                raise WarehouseError(
-                    f"warehouse {p} was created with a different pseudonymisation key than the one in {key.source}")
             if not meta:
                 con.executemany("INSERT INTO warehouse_meta VALUES (?, ?)", [
-                    ("schema_version", SCHEMA_VERSION), ("key_fingerprint", key.fingerprint()),
-                    ("created_at", datetime.now(timezone.utc).isoformat())])
+                    ("schema_version", SCHEMA_VERSION), ("key_check", make_key_check(key)),
+                    ("pseudonym_encoding", key.encoding), ("created_at", datetime.now(timezone.utc).isoformat())])
             if config is not None or stored_config(con) is None:
                 store_config(con, config or StudyConfig())
     finally:
@@ -145,10 +196,46 @@ def stored_config(con: duckdb.DuckDBPyConnection) -> StudyConfig | None:
     return parse_config(json.loads(row[0]), "the warehouse's stored configuration")
 
 
-def check_key(con: duckdb.DuckDBPyConnection, key: PseudonymKey, path: Path) -> None:
-    """Refuse a key that differs from the one the warehouse was created with."""
-    row = con.execute("SELECT value FROM warehouse_meta WHERE key = 'key_fingerprint'").fetchone()
-    if row is not None and row[0] != key.fingerprint():
+def _upgrade_from_fingerprint(con: duckdb.DuckDBPyConnection, key: PseudonymKey, path: Path) -> None:
+    """Schema 1 -> 2: replace the unsalted fingerprint by the salted check; keep the stored pseudonyms.
+
+    Stored pseudonyms cannot be recomputed (raw identifiers are not kept), so the
+    warehouse keeps the ``separator`` encoding it was built with.  That encoding is
+    unambiguous when no site id holds U+001F, which is checked here.
+    """
+    bad = con.execute(
+        "SELECT count(*) FROM (SELECT site_id FROM assignments UNION ALL SELECT site_id FROM uptake_events "
+        "UNION ALL SELECT site_id FROM outcome_measurements) WHERE strpos(site_id, chr(31)) > 0").fetchone()[0]
+    if bad:
         raise WarehouseError(
-            f"the pseudonymisation key from {key.source} is not the one warehouse {path} was created with; "
-            "ingesting with it would split participants into unrelated pseudonyms")
+            f"warehouse {path} cannot be upgraded in place: {bad} stored row(s) have a site id containing the "
+            "control character U+001F, whose pseudonyms may be ambiguous; build a new warehouse with "
+            "'takeup init' and ingest the original files again")
+    with transaction(con):
+        con.execute("DELETE FROM warehouse_meta WHERE key IN ('key_fingerprint', 'schema_version', "
+                    "'pseudonym_encoding', 'key_check')")
+        con.executemany("INSERT INTO warehouse_meta VALUES (?, ?)", [
+            ("schema_version", SCHEMA_VERSION), ("key_check", make_key_check(key)),
+            ("pseudonym_encoding", "separator"), ("upgraded_at", datetime.now(timezone.utc).isoformat())])
+
+
+def check_key(con: duckdb.DuckDBPyConnection, key: PseudonymKey, path: Path) -> PseudonymKey:
+    """Refuse a key that differs from the one the warehouse was created with.
+
+    Returns the key set to the warehouse's pseudonym encoding.  A schema-1 warehouse
+    (unsalted fingerprint) is upgraded on the way when the key matches (needs a
+    writable connection).
+    """
+    meta = dict(con.execute("SELECT key, value FROM warehouse_meta").fetchall())
+    wrong = WarehouseError(
+        f"the pseudonymisation key from {key.source} is not the one warehouse {path} was created with; "
+        "ingesting with it would split participants into unrelated pseudonyms")
+    if "key_check" in meta:
+        if not key_check_matches(key, meta["key_check"]):
+            raise wrong
+    elif "key_fingerprint" in meta:
+        if meta["key_fingerprint"] != legacy_fingerprint(key):
+            raise wrong
+        _upgrade_from_fingerprint(con, key, path)
+        meta["pseudonym_encoding"] = "separator"
+    return key.with_encoding(meta.get("pseudonym_encoding", "length_prefixed"))

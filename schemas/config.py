@@ -13,7 +13,9 @@ from __future__ import annotations
 import difflib
 import hashlib
 import json
+import re
 import tomllib
+from datetime import date, timedelta
 from pathlib import Path
 from typing import Any, Literal, Optional
 
@@ -23,7 +25,7 @@ from takeup.schemas.records import ARMS
 
 __all__ = [
     "ConfigError", "StudyConfig", "OutcomeSpec", "SiteSpec", "FollowUp", "AlertThresholds",
-    "EstimationSettings", "TrendSettings", "ScheduleSettings", "ExecutionSettings",
+    "EstimationSettings", "TrendSettings", "ScheduleSettings", "ExecutionSettings", "DateWindow",
     "load_config", "parse_config", "nearest_name",
 ]
 
@@ -72,6 +74,12 @@ class SiteSpec(_Cfg):
     allocation: Optional[dict[str, float]] = Field(default=None, description="Designed arm shares for this site.")
 
     _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
+
+    @field_validator("site_id")
+    @classmethod
+    def _nfc(cls, v: str) -> str:
+        import unicodedata
+        return unicodedata.normalize("NFC", v)   # as ingestion normalises the site ids of files
 
 
 class FollowUp(_Cfg):
@@ -154,9 +162,78 @@ class TrendSettings(_Cfg):
                                               "and missing_uptake_reports counts only participants due a report.")
 
 
+_CRON_FIELDS = (("minute", 0, 59), ("hour", 0, 23), ("day of month", 1, 31), ("month", 1, 12), ("day of week", 0, 7))
+_CRON_NAMES = {3: ["jan", "feb", "mar", "apr", "may", "jun", "jul", "aug", "sep", "oct", "nov", "dec"],
+               4: ["sun", "mon", "tue", "wed", "thu", "fri", "sat"]}
+_CRON_MACROS = ("@yearly", "@annually", "@monthly", "@weekly", "@daily", "@midnight", "@hourly")
+
+
+def _cron_value(text: str, i: int) -> int:
+    names = _CRON_NAMES.get(i)
+    if names and text.lower() in names:
+        return names.index(text.lower()) + (1 if i == 3 else 0)
+    if not text.isdigit():
+        raise ValueError(f"{text!r} is not a number")
+    return int(text)
+
+
+def check_cron(expr: str) -> str:
+    """Validate a five-field cron expression (minute hour day-of-month month day-of-week) or a macro."""
+    text = expr.strip()
+    if text.lower() in _CRON_MACROS:
+        return text
+    parts = text.split()
+    if len(parts) != 5:
+        raise ValueError(f"a cron schedule has 5 fields (minute hour day-of-month month day-of-week), "
+                         f"got {len(parts)}; e.g. '0 6 * * 1' is Mondays at 06:00")
+    for i, (part, (label, lo, hi)) in enumerate(zip(parts, _CRON_FIELDS)):
+        for item in part.split(","):
+            m = re.fullmatch(r"(\*|[A-Za-z0-9]+(?:-[A-Za-z0-9]+)?)(?:/(\d+))?", item)
+            try:
+                if not m or (m.group(2) is not None and int(m.group(2)) < 1):
+                    raise ValueError(f"{item!r} is not a value, range, list or step")
+                if m.group(1) != "*":
+                    for v in m.group(1).split("-"):
+                        if not lo <= _cron_value(v, i) <= hi:
+                            raise ValueError(f"{v!r} is outside {lo}-{hi}")
+            except ValueError as exc:
+                raise ValueError(f"cron field {i + 1} ({label}) in {expr!r}: {exc}") from None
+    return text
+
+
 class ScheduleSettings(_Cfg):
-    cron: str = Field(default="0 6 * * 1", description="When `takeup serve` runs the monitoring flow (cron syntax).")
-    timezone: str = Field(default="UTC")
+    cron: str = Field(default="0 6 * * 1", description="When `takeup serve` runs ingestion and then the monitoring "
+                                                       "(cron syntax: minute hour day-of-month month day-of-week).")
+    timezone: str = Field(default="UTC", description="IANA time zone of the cron schedule, e.g. Europe/Berlin.")
+
+    @field_validator("cron")
+    @classmethod
+    def _cron(cls, v: str) -> str:
+        return check_cron(v)
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, v: str) -> str:
+        from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+        try:
+            ZoneInfo(v)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"unknown time zone {v!r}; use an IANA name such as 'UTC' or 'Europe/Berlin'") from None
+        return v
+
+
+class DateWindow(_Cfg):
+    """Dates a record may plausibly carry; earlier ones are quarantined as ``implausible_date``."""
+
+    earliest: Optional[date] = Field(default=None, description="Earliest plausible record date, e.g. the study "
+                                                               "start minus a year (YYYY-MM-DD).")
+    max_age_years: int = Field(default=10, ge=1, le=120, description="Without `earliest`: records dated more than "
+                                                                     "this many years before the ingestion day.")
+
+    def earliest_on(self, today: date) -> date:
+        if self.earliest is not None:
+            return self.earliest
+        return today - timedelta(days=round(365.25 * self.max_age_years))
 
 
 class ExecutionSettings(_Cfg):
@@ -210,6 +287,7 @@ class StudyConfig(_Cfg):
     execution: ExecutionSettings = ExecutionSettings()
     sequential: SequentialSettings = SequentialSettings()
     planning: PlanningSettings = PlanningSettings()
+    dates: DateWindow = DateWindow()
 
     _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
 
@@ -235,6 +313,9 @@ class StudyConfig(_Cfg):
         if sum(o.primary for o in self.outcomes) > 1:
             raise ValueError("at most one outcome may be primary")
         ids = [s.site_id for s in self.sites]
+        for sid in ids:
+            if re.search(r"[\x00-\x1f\x7f-\x9f]", sid) or sid != sid.strip():
+                raise ValueError(f"site id {sid!r} has a control character or white space at an end")
         if len(set(ids)) != len(ids):
             dup = next(i for i in ids if ids.count(i) > 1)
             raise ValueError(f"site {dup!r} appears twice in the registry")

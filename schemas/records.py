@@ -169,7 +169,8 @@ class QuarantineRow(_Strict):
     source_row: Optional[int] = Field(default=None, description="Row in the source file (see `source_row` above).")
     field: Optional[str] = Field(default=None, description="Field that failed, if one field is to blame.")
     reason: str = Field(description="Machine-readable reason code (see README).")
-    offending_value: Optional[str] = Field(default=None, description="The rejected value (never an identifier).")
+    offending_value: Optional[str] = Field(default=None, description="The rejected value; null for identifiers and "
+                                                                     "for values that may be ones (see README).")
 
 
 class StudyConfigRow(_Strict):
@@ -181,7 +182,7 @@ class StudyConfigRow(_Strict):
 
 
 class WarehouseMetaRow(_Strict):
-    """Table `warehouse_meta`: key/value facts about the warehouse (schema version, key fingerprint)."""
+    """Table `warehouse_meta`: key/value facts about the warehouse (schema version, key check, pseudonym encoding)."""
 
     key: str = Field(description="Fact name.")
     value: str = Field(description="Fact value.")

@@ -199,8 +199,10 @@ def test_pseudonymisation_matches_hmac_and_no_raw_id_is_stored(warehouse, tmp_pa
                                  f"S1,{ids[0]},2026-01-09,no"))
     con = duckdb.connect(str(warehouse), read_only=True)
     key = con.execute("SELECT participant_key FROM assignments").fetchone()[0]
-    # RFC 2104 HMAC-SHA256 via Python's hmac module as the reference
-    expected = int(hmac.new(TEST_KEY.encode(), ("S1\x1f" + ids[0]).encode(), hashlib.sha256).hexdigest()[:32], 16)
+    # RFC 2104 HMAC-SHA256 via Python's hmac module as the reference, over the documented
+    # length-prefixed message: byte length of the site id, ':', site id, the same for the participant id
+    msg = f"2:S1{len(ids[0])}:{ids[0]}".encode()
+    expected = int(hmac.new(TEST_KEY.encode(), msg, hashlib.sha256).hexdigest()[:32], 16)
     assert key == expected
     for table in TABLES + ("study_configs", "warehouse_meta"):
         text = [str(v) for row in con.execute(f"SELECT * FROM {table}").fetchall() for v in row]
@@ -268,10 +270,10 @@ def test_source_rows_after_malformed_lines(warehouse, tmp_path):
 
 def test_wrong_key_is_refused(tmp_path, monkeypatch):
     from takeup.pipeline.warehouse import WarehouseError
-    monkeypatch.setenv("TAKEUP_ID_KEY", "key-one")
+    monkeypatch.setenv("TAKEUP_ID_KEY", "key-one-0123456789")
     path = tmp_path / "w.duckdb"
     init_warehouse(path)
-    monkeypatch.setenv("TAKEUP_ID_KEY", "key-two")
+    monkeypatch.setenv("TAKEUP_ID_KEY", "key-two-0123456789")
     f = write_csv(tmp_path / "a.csv", A_HEADER, "S1,p1,control,2026-01-05")
     with pytest.raises(WarehouseError, match="not the one"):
         ingest_paths(path, [f])

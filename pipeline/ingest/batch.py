@@ -17,17 +17,24 @@ assignment arrives, so arrival order never loses data.
 
 from __future__ import annotations
 
-from takeup.pipeline.errors import IngestError  # noqa: F401  (re-exported)
+from takeup.pipeline.errors import IngestError, InfrastructureError, infrastructure_problem  # noqa: F401
 
+import csv
 import hashlib
+import io
+import os
+import re
+import unicodedata
 from dataclasses import dataclass, field
 from datetime import date, datetime, timezone
 from pathlib import Path
 
 import duckdb
+import numpy as np
 
 from takeup.pipeline.pseudonym import PseudonymKey
-from takeup.pipeline.ingest.row_checks import ParsePlan, build_parse_plan, known_columns, required_columns
+from takeup.pipeline.ingest.row_checks import (ParsePlan, build_parse_plan, is_numeric_type, known_columns,
+                                               required_columns)
 from takeup.pipeline.warehouse import transaction
 from takeup.schemas.config import StudyConfig, nearest_name
 from takeup.schemas.ddl import columns_of
@@ -69,12 +76,78 @@ class BatchReport:
 
 
 def file_sha256(path: Path) -> str:
+    return _read_pass(path, scan_lines=False)[0]
+
+
+def _read_pass(path: Path, scan_lines: bool) -> tuple[str, list[int]]:
+    """SHA-256 of the file and, for CSV, the physical numbers of its blank lines outside quotes.
+
+    One pass in 1 MiB chunks; the line scan is vectorised (numpy) and keeps the parity of
+    quote characters across chunks, so a blank line inside a quoted value is not counted.
+    DuckDB's CSV reader skips blank lines; knowing them keeps ``source_row`` the physical line.
+    """
     h = hashlib.sha256()
+    blanks: list[np.ndarray] = []
+    line = 1            # physical line number at the start of the chunk
+    pending = 0         # bytes of the current (unterminated) line seen in earlier chunks
+    pending_cr = False  # ... and whether they are exactly one carriage return
+    parity = 0          # quote characters seen so far, mod 2
     with open(path, "rb") as fh:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             h.update(chunk)
-    return h.hexdigest()
+            if not scan_lines:
+                continue
+            buf = np.frombuffer(chunk, dtype=np.uint8)
+            nl = np.flatnonzero(buf == 10)
+            quotes = np.flatnonzero(buf == 34)
+            if len(nl):
+                starts = np.concatenate(([0], nl[:-1] + 1))
+                length = nl - starts
+                length[0] += pending
+                ends_cr = np.zeros(len(nl), dtype=bool)
+                ends_cr[length > 0] = buf[np.maximum(nl[length > 0] - 1, 0)] == 13
+                if pending and nl[0] == 0:
+                    ends_cr[0] = pending_cr
+                blank = (length == 0) | ((length == 1) & ends_cr)
+                inside = (parity + np.searchsorted(quotes, nl)) % 2 == 1
+                hit = np.flatnonzero(blank & ~inside)
+                if len(hit):
+                    blanks.append(hit + line)
+                tail = len(buf) - nl[-1] - 1
+                pending_cr = tail == 1 and buf[-1] == 13
+                pending = tail
+                line += len(nl)
+            else:
+                pending_cr = pending == 0 and len(buf) == 1 and buf[0] == 13
+                pending += len(buf)
+            parity = (parity + len(quotes)) % 2
+    lines = [int(x) for x in np.concatenate(blanks)] if blanks else []
+    return h.hexdigest(), lines
 
+
+def _unclosed_quote_line(path: Path) -> int | None:
+    """The first physical line with an odd number of quote characters, when the file's count is odd.
+
+    Used only after the CSV reader failed, to say where a quoted value is never closed.
+    """
+    buf = np.frombuffer(Path(path).read_bytes(), dtype=np.uint8)
+    quotes = np.flatnonzero(buf == 34)
+    if len(quotes) % 2 == 0:
+        return None
+    nl = np.flatnonzero(buf == 10)
+    per_line = np.bincount(np.searchsorted(nl, quotes))
+    odd = np.flatnonzero(per_line % 2 == 1)
+    return int(odd[0]) + 1 if len(odd) else None
+
+
+def literal_path(path: Path) -> str:
+    """``path`` as DuckDB's file readers take it literally: glob characters bracketed.
+
+    DuckDB expands ``*``, ``?`` and ``[...]`` in the path given to ``read_csv`` /
+    ``read_parquet``; ``[*]`` matches only a literal ``*``, so a file named ``wk*.csv``
+    reads as itself and never as every ``wk…csv`` beside it.
+    """
+    return re.sub(r"([*?\[])", r"[\1]", str(Path(path).resolve()))
 
 def _q(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
@@ -88,6 +161,24 @@ def _file_format(path: Path) -> str:
     return "csv"
 
 
+def _all_known(config: StudyConfig | None = None) -> set[str]:
+    names = set().union(*(known_columns(k) for k in RECORD_KINDS))
+    return names | set(config.covariates if config is not None else ())
+
+
+def _columns_phrase(columns: list[str], known: set[str]) -> str:
+    """The header described without echoing names that are not column names (they may be data)."""
+    found = [c for c in columns if c in known]
+    other = [i + 1 for i, c in enumerate(columns) if c not in known]
+    parts = []
+    if found:
+        parts.append("found " + ", ".join(found))
+    if other:
+        parts.append(f"column{'s' if len(other) > 1 else ''} {', '.join(map(str, other))} "
+                     f"{'are' if len(other) > 1 else 'is'} not a known column name")
+    return "; ".join(parts) or "no columns"
+
+
 def detect_kind(columns: list[str], file: str) -> str:
     """Record kind from a file's header (raises :class:`IngestError` when none or several fit)."""
     cols = set(columns)
@@ -99,15 +190,54 @@ def detect_kind(columns: list[str], file: str) -> str:
                           "say which with --kind")
     best = min(RECORD_KINDS, key=lambda k: len(required_columns(k) - cols))
     missing = sorted(required_columns(best) - cols)
-    raise IngestError(f"{file}: cannot tell the record kind from the columns {sorted(cols)}; "
+    raise IngestError(f"{file}: cannot tell the record kind from the columns ({_columns_phrase(columns, _all_known())}); "
                       f"closest is '{best}', which also needs {', '.join(missing)}")
 
 
-def _stage(con: duckdb.DuckDBPyConnection, path: Path, fmt: str) -> tuple[int, list[int]]:
-    """Read the file into temp table ``_stage`` with a ``_row`` column; returns (rows, rejected lines)."""
+def _csv_header(path: Path) -> list[str]:
+    """The first record of a CSV file, split by Python's csv module (for checks DuckDB hides)."""
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 20)
+    text = head.decode("utf-8", errors="replace").lstrip("\ufeff")
+    try:
+        row = next(csv.reader(io.StringIO(text), delimiter=",", quotechar='"'), [])
+    except csv.Error:
+        return []
+    return row
+
+
+def _check_header_names(names: list[str], file: str, config: StudyConfig) -> None:
+    """Empty, duplicated and data-looking header names, described by position for unknown names."""
+    known = _all_known(config)
+    norm = [unicodedata.normalize("NFC", n).strip().lower() for n in names]
+    for i, n in enumerate(norm):
+        if not n:
+            raise IngestError(f"{file}: column {i + 1} of the header has an empty name")
+    seen: dict[str, int] = {}
+    for i, n in enumerate(norm):
+        if n in seen:
+            if n in known:
+                raise IngestError(f"{file}: column '{n}' appears twice in the header (columns {seen[n] + 1} "
+                                  f"and {i + 1})")
+            raise IngestError(f"{file}: columns {seen[n] + 1} and {i + 1} of the header have the same name")
+        seen[n] = i
+    if norm and not any(n in known or nearest_name(n, sorted(known)) for n in norm):
+        raise IngestError(f"{file}: cannot find a header: none of the {len(norm)} values on the first line is a "
+                          "column name (expected e.g. site_id, participant_id, arm, assigned_on); the first line "
+                          "must name the columns")
+
+
+def _stage(con: duckdb.DuckDBPyConnection, path: Path, fmt: str, blank_lines: list[int] = ()
+           ) -> tuple[int, list[int]]:
+    """Read the file into temp table ``_stage`` with a ``_row`` column; returns (rows, rejected lines).
+
+    ``blank_lines`` (physical numbers) are lines the CSV reader skips: together with the
+    rejected lines they are the lines that hold no accepted record.
+    """
+    src = literal_path(path)
     if fmt == "parquet":
         con.execute("CREATE OR REPLACE TEMP TABLE _stage AS SELECT file_row_number + 1 AS _row, "
-                    "* EXCLUDE (file_row_number) FROM read_parquet($p, file_row_number = true)", {"p": str(path)})
+                    "* EXCLUDE (file_row_number) FROM read_parquet($p, file_row_number = true)", {"p": src})
         return con.execute("SELECT count(*) FROM _stage").fetchone()[0], []
     con.execute("DROP TABLE IF EXISTS _stage_rej")
     con.execute("DROP TABLE IF EXISTS _stage_rej_scan")
@@ -115,34 +245,63 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path, fmt: str) -> tuple[int, l
         "CREATE OR REPLACE TEMP TABLE _stage AS SELECT row_number() OVER () + 1 AS _row, * FROM read_csv($p, "
         "header = true, all_varchar = true, delim = ',', quote = '\"', escape = '\"', null_padding = false, "
         "store_rejects = true, rejects_table = '_stage_rej', rejects_scan = '_stage_rej_scan', strict_mode = true)",
-        {"p": str(path)})
+        {"p": src})
     n, rejected = con.execute("SELECT (SELECT count(*) FROM _stage), "
                               "(SELECT list(DISTINCT line ORDER BY line) FROM _stage_rej)").fetchone()
     rejected = list(rejected or [])
-    if rejected:
-        # accepted records fill the physical lines not taken by rejected ones, in order
-        # t = accepted records before a rejected line; c = rejected lines up to it (ties: keep the largest c)
+    skipped = sorted(set(rejected) | set(blank_lines))
+    if skipped:
+        # accepted records fill the physical lines not taken by rejected or blank ones, in order
+        # t = accepted records before a skipped line; c = skipped lines up to it (ties: keep the largest c)
+        con.execute("CREATE OR REPLACE TEMP TABLE _stage_skip (line BIGINT)")
+        con.execute("INSERT INTO _stage_skip SELECT unnest($l::BIGINT[])", {"l": skipped})
         con.execute("CREATE OR REPLACE TEMP TABLE _stage_thr AS SELECT t, max(c) AS c FROM ("
                     "SELECT line - 1 - (row_number() OVER (ORDER BY line) - 1) AS t, "
-                    "row_number() OVER (ORDER BY line) AS c FROM (SELECT DISTINCT line FROM _stage_rej)) GROUP BY t")
+                    "row_number() OVER (ORDER BY line) AS c FROM _stage_skip) GROUP BY t")
         con.execute("CREATE OR REPLACE TEMP TABLE _stage AS SELECT s._row + coalesce(th.c, 0) AS _row, s.* EXCLUDE (_row) "
                     "FROM _stage s ASOF LEFT JOIN _stage_thr th ON s._row - 1 >= th.t")
     return n + len(rejected), rejected
 
 
-def _stage_columns(con: duckdb.DuckDBPyConnection, file: str) -> dict[str, str]:
+_MALFORMED_TEXT = {
+    "TOO MANY COLUMNS": "more fields than the header",
+    "MISSING COLUMNS": "fewer fields than the header",
+    "UNQUOTED VALUE": "a quote inside an unquoted field",
+    "INVALID UNICODE": "not valid UTF-8 text",
+    "LINE SIZE OVER MAXIMUM": "the line is too long",
+}
+
+
+def _read_failure(exc: duckdb.Error, path: Path, fmt: str) -> Exception:
+    """The error to raise when DuckDB cannot read the file: infrastructure, or a one-line IngestError.
+
+    DuckDB's own message is not passed on: it can quote the file's content.
+    """
+    name = path.name
+    problem = infrastructure_problem(exc)
+    if problem:
+        return InfrastructureError(f"{name}: {problem} while reading the file")
+    if fmt == "parquet":
+        return IngestError(f"{name}: cannot read the file as Parquet (truncated, or not a Parquet file)")
+    text = str(exc)
+    line = _unclosed_quote_line(path)
+    if line is not None:
+        return IngestError(f"{name}: line {line}: a quoted value is never closed (unterminated quote); "
+                           "the file cannot be split into rows")
+    if "invalid unicode" in text.lower():
+        return IngestError(f"{name}: the file is not UTF-8 text")
+    return IngestError(f"{name}: cannot read the file as CSV (comma-separated, double quotes, a header line)")
+
+
+def _stage_columns(con: duckdb.DuckDBPyConnection, file: str, config: StudyConfig) -> dict[str, str]:
     cols = con.execute("SELECT column_name, data_type FROM duckdb_columns() "
                        "WHERE table_name = '_stage' AND database_name = 'temp' ORDER BY column_index").fetchall()
+    cols = [(n, t) for n, t in cols if n != "_row"]
+    _check_header_names([n for n, _ in cols], file, config)
     out: dict[str, str] = {}
     renames = []
     for name, dtype in cols:
-        if name == "_row":
-            continue
-        norm = name.strip().lower()
-        if not norm:
-            raise IngestError(f"{file}: a column of the header has an empty name")
-        if norm in out:
-            raise IngestError(f"{file}: column '{name}' appears twice in the header")
+        norm = unicodedata.normalize("NFC", name).strip().lower()
         out[norm] = dtype
         if norm != name:
             renames.append((name, norm))
@@ -151,18 +310,54 @@ def _stage_columns(con: duckdb.DuckDBPyConnection, file: str) -> dict[str, str]:
     return out
 
 
+#: id columns that must be text (or whole numbers) in typed files such as Parquet
+_TEXT_ID_COLUMNS = ("site_id", "participant_id", "cluster_id", "stratum")
+
+
 def _check_columns(kind: str, columns: dict[str, str], config: StudyConfig, file: str) -> tuple[str, ...]:
-    missing = sorted(required_columns(kind) - set(columns))
+    names = list(columns)
+    required = set(required_columns(kind))
+    if kind == "assignment" and config.randomisation_unit == "cluster":
+        required.add("cluster_id")
+    missing = sorted(required - set(columns))
     if missing:
-        raise IngestError(f"{file}: {kind} files need the column(s) {', '.join(missing)}")
+        why = " (the study randomises by cluster)" if missing == ["cluster_id"] else ""
+        raise IngestError(f"{file}: {kind} files need the column(s) {', '.join(missing)}{why}")
     allowed = known_columns(kind) | (set(config.covariates) if kind == "assignment" else set())
-    for col in columns:
+    for pos, col in enumerate(names, start=1):
         if col not in allowed:
-            hint = nearest_name(col, sorted(allowed))
-            extra = f"; did you mean '{hint}'?" if hint else ""
             decl = " (declare covariates under 'covariates' in the study configuration)" if kind == "assignment" else ""
-            raise IngestError(f"{file}: unexpected column '{col}' in a {kind} file{extra}{decl}")
+            hint = nearest_name(col, sorted(allowed))
+            if hint:        # a near miss of a column name is a mistyped header, safe to repeat
+                raise IngestError(f"{file}: unexpected column '{col}' (column {pos}) in a {kind} file; "
+                                  f"did you mean '{hint}'?{decl}")
+            if col in _all_known(config):
+                raise IngestError(f"{file}: column '{col}' (column {pos}) does not belong in a {kind} file{decl}")
+            raise IngestError(f"{file}: column {pos} of the header is not a column of a {kind} file "
+                              f"(accepted: {', '.join(sorted(allowed))}){decl}")
+    for pos, col in enumerate(names, start=1):
+        dtype = columns[col]
+        if col in _TEXT_ID_COLUMNS and is_numeric_type(dtype) and (dtype in ("FLOAT", "DOUBLE")
+                                                                   or dtype.startswith("DECIMAL")):
+            raise IngestError(f"{file}: column {pos} ({col}) holds {dtype} numbers; store ids as text "
+                              "(as numbers, an id 1 reads as '1.0' and never matches the same id sent as text)")
     return tuple(c for c in config.covariates if c in columns) if kind == "assignment" else ()
+
+
+#: without a site registry, a file whose site_id column has more distinct values than this, in
+#: more than half of its rows, is taken for shifted columns (participant ids read as site ids)
+MAX_UNREGISTERED_SITES_PER_FILE = 20
+
+
+def _check_site_column(con, config: StudyConfig, columns: dict[str, str], file: str) -> None:
+    if config.sites:
+        return          # the registry check quarantines unknown sites (without their value)
+    n_sites, n_rows = con.execute("SELECT count(DISTINCT site_id), count(*) FROM _parsed WHERE NOT _bad").fetchone()
+    if n_sites > MAX_UNREGISTERED_SITES_PER_FILE and 2 * n_sites > n_rows:
+        pos = list(columns).index("site_id") + 1
+        raise IngestError(f"{file}: column {pos} (site_id) has {n_sites} different values in {n_rows} rows; that "
+                          "looks like participant identifiers, not sites (shifted columns?). Check the column "
+                          "order, or list the sites under [[sites]] in the study configuration")
 
 
 def _params(plan_sql: str, key: PseudonymKey, config: StudyConfig, today: date) -> dict:
@@ -172,8 +367,10 @@ def _params(plan_sql: str, key: PseudonymKey, config: StudyConfig, today: date) 
         params["opad"] = key.opad
     if "$today" in plan_sql:
         params["today"] = today
+    if "$earliest" in plan_sql:
+        params["earliest"] = config.dates.earliest_on(today)
     if "$registry" in plan_sql:
-        params["registry"] = [s.site_id for s in config.sites]
+        params["registry"] = [unicodedata.normalize("NFC", s.site_id).strip() for s in config.sites]
     if "$outcomes" in plan_sql:
         params["outcomes"] = [o.name for o in config.outcomes]
     return params
@@ -196,10 +393,14 @@ def _quarantine_checks(con, plan: ParsePlan, batch_id: str, file_name: str) -> N
 
 
 def _quarantine_malformed(con, rejected: list[int], batch_id: str, file_name: str) -> None:
+    # a fixed description per error type: the reader's own message may quote the line
     if rejected:
-        con.execute("INSERT INTO quarantine SELECT $b, $f, line, NULL, 'malformed_row', left(error_message, 200) "
-                    "FROM (SELECT line, min(error_message) AS error_message FROM _stage_rej GROUP BY line)",
-                    {"b": batch_id, "f": file_name})
+        types = list(_MALFORMED_TEXT)
+        con.execute("INSERT INTO quarantine SELECT $b, $f, line, NULL, 'malformed_row', "
+                    "coalesce(list_extract($texts, list_position($types, error_type)), "
+                    "'cannot be split into the header''s fields') "
+                    "FROM (SELECT line, min(CAST(error_type AS VARCHAR)) AS error_type FROM _stage_rej GROUP BY line)",
+                    {"b": batch_id, "f": file_name, "types": types, "texts": [_MALFORMED_TEXT[t] for t in types]})
 
 
 def _classify_valid(con, kind: str, plan: ParsePlan) -> None:
@@ -260,7 +461,7 @@ def _insert_records(con, kind: str, plan: ParsePlan, batch_id: str) -> None:
                     f"FROM _valid WHERE NOT _dup AND NOT _conflict", {"b": batch_id, "cov": cov})
 
 
-_TEMP_TABLES = ("_stage", "_stage_rej", "_stage_rej_scan", "_stage_thr", "_parsed", "_valid")
+_TEMP_TABLES = ("_stage", "_stage_rej", "_stage_rej_scan", "_stage_skip", "_stage_thr", "_parsed", "_valid")
 
 
 def _cleanup(con) -> None:
@@ -285,7 +486,14 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
                           + f" (accepted: {', '.join(RECORD_KINDS)})")
     if not path.is_file():
         raise IngestError(f"{path}: no such file")
-    sha = file_sha256(path)
+    try:
+        fmt = _file_format(path)
+        sha, blank_lines = _read_pass(path, scan_lines=(fmt == "csv"))
+    except OSError as exc:
+        problem = infrastructure_problem(exc)
+        if problem:
+            raise InfrastructureError(f"{name}: {problem} while reading the file") from None
+        raise IngestError(f"{name}: cannot read the file: {exc.strerror}") from None
     received = datetime.now(timezone.utc).replace(tzinfo=None)
     today = today or received.date()
     prior = con.execute("SELECT batch_id FROM batches WHERE sha256 = $s AND status = 'loaded' LIMIT 1",
@@ -305,17 +513,20 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
         with transaction(con):
             if path.stat().st_size == 0:
                 raise IngestError(f"{name}: the file is empty (no header, no rows)")
+            if fmt == "csv":
+                _check_header_names(_csv_header(path), name, config)   # before DuckDB renames duplicates
             try:
-                fmt = _file_format(path)
-                rows_read, rejected = _stage(con, path, fmt)
+                rows_read, rejected = _stage(con, path, fmt, blank_lines)
             except duckdb.Error as exc:
-                raise IngestError(f"{name}: cannot read the file as CSV or Parquet: {str(exc).splitlines()[0]}") from None
-            columns = _stage_columns(con, name)
+                raise _read_failure(exc, path, fmt) from None
+            columns = _stage_columns(con, name, config)
             file_kind = kind or detect_kind(list(columns), name)
             covariates = _check_columns(file_kind, columns, config, name)
-            plan = build_parse_plan(file_kind, columns, covariates, PseudonymKey.sql)
+            also = ("cluster_id",) if file_kind == "assignment" and config.randomisation_unit == "cluster" else ()
+            plan = build_parse_plan(file_kind, columns, covariates, key.sql_expr, also_required=also)
             _parse(con, plan, key, config, today)
             con.execute("DROP TABLE _stage")          # raw identifiers go no further
+            _check_site_column(con, config, columns, name)
             n_bad = con.execute("SELECT count(*) FILTER (WHERE _bad) FROM _parsed").fetchone()[0]
             if rejected:
                 _quarantine_malformed(con, rejected, batch_id, name)
@@ -352,9 +563,19 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
         _cleanup(con)
         return reject(str(exc))
     except duckdb.Error as exc:
-        # a file DuckDB cannot process (odd encodings, binary content): reject it, keep the warehouse as it was
         _cleanup(con)
-        return reject(f"{name}: the file could not be processed: {str(exc).splitlines()[0]}")
+        problem = infrastructure_problem(exc)
+        if problem:
+            # not the file's fault: nothing is recorded, the caller stops and says what to change
+            limit = os.environ.get("TAKEUP_MEMORY_LIMIT")
+            hint = (f"; raise TAKEUP_MEMORY_LIMIT (now {limit})" if problem == "out of memory" and limit else
+                    "; set TAKEUP_MEMORY_LIMIT higher" if problem == "out of memory" else "")
+            raise InfrastructureError(f"{name}: {problem} while ingesting the file{hint}; "
+                                      "the warehouse is unchanged") from None
+        # a file DuckDB cannot process (odd encodings, binary content): reject it, keep the warehouse as it was.
+        # DuckDB's message is not repeated: it can quote the file's content
+        return reject(f"{name}: the file could not be processed ({type(exc).__name__.removesuffix('Exception')} "
+                      "error while checking its rows)")
     except BaseException:
         _cleanup(con)
         raise

@@ -13,10 +13,9 @@ import secrets
 from dataclasses import dataclass
 from pathlib import Path
 
-import duckdb
-
 from takeup.pipeline.ingest.batch import ingest_file
 from takeup.pipeline.pseudonym import PseudonymKey
+from takeup.pipeline.warehouse import memory_connection
 from takeup.schemas.config import StudyConfig, parse_config
 from takeup.schemas.ddl import create_table_sql
 from takeup.schemas.records import STORAGE_TABLES
@@ -37,14 +36,11 @@ class Prevalidation:
 
 def prevalidate_file(path: Path, config_json: str | None = None, kind: str | None = None) -> Prevalidation:
     config = parse_config(json.loads(config_json)) if config_json else StudyConfig()
-    con = duckdb.connect(":memory:")
-    try:
+    with memory_connection() as con:     # spills, if at all, to a private directory removed afterwards
         for table, model in STORAGE_TABLES.items():
             con.execute(create_table_sql(table, model))
         key = PseudonymKey(secrets.token_bytes(32), "ephemeral validation key")
         r = ingest_file(con, path, key, config, kind=kind)
-    finally:
-        con.close()
     return Prevalidation(file=str(path), status="would_load" if r.status == "loaded" else "rejected",
                          kind=r.kind, rows_read=r.rows_read, rows_failing_checks=r.rows_quarantined,
                          reasons=dict(r.reasons), message=r.message)

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Iterable, Sequence
 
-from takeup.pipeline.ingest.batch import BatchReport, IngestError, ingest_file
+from takeup.pipeline.ingest.batch import BatchReport, IngestError, ingest_file, literal_path  # noqa: F401
 from takeup.pipeline.pseudonym import load_key
 from takeup.pipeline.warehouse import check_key, connect, stored_config
 from takeup.schemas.config import StudyConfig
@@ -29,14 +29,15 @@ def ingest_paths(warehouse: Path | str, paths: Sequence[Path | str], kind: str |
     """Ingest ``paths`` (files, or directories searched for .csv/.parquet) in the given order.
 
     Each file is its own atomic batch; a file that cannot be ingested is reported
-    as rejected and the others still load.
+    as rejected and the others still load.  An infrastructure failure (out of memory,
+    disk full, permission denied) is not the file's fault: it stops here with
+    :class:`~takeup.pipeline.errors.InfrastructureError`, the files before it stay loaded.
     """
     warehouse = Path(warehouse)
     files = expand_paths(paths)
     con = connect(warehouse)
     try:
-        key = load_key(warehouse)
-        check_key(con, key, warehouse)
+        key = check_key(con, load_key(warehouse), warehouse)   # set to the warehouse's pseudonym encoding
         cfg = config or stored_config(con) or StudyConfig()
         reports: list[BatchReport] = []
         bar = None

@@ -15,15 +15,25 @@ Reason codes (the ``quarantine.reason`` column):
 ``too_long``           text longer than the model allows
 ``unknown_<field>``    a value outside the accepted list (e.g. ``unknown_arm``)
 ``invalid_boolean``    not one of 1/0, true/false, yes/no
-``invalid_date``       not an ISO date, impossible calendar date, or before 1900
+``invalid_date``       not ``YYYY-MM-DD``, impossible calendar date, or before 1900
+``implausible_date``   a real date before the study's plausible window (``[dates]``)
 ``future_date``        after the ingestion date
-``not_a_number``       not parseable as a number
+``not_a_number``       not a plain decimal number (``1_000``, ``1,5``, ``12 kg`` are not)
 ``not_finite``         NaN or infinite
+``control_character``  a site or participant identifier holds a control character
 ``unknown_site``       site not in the study's site registry
 ``unknown_outcome``    outcome not declared in the study configuration
 ``malformed_row``      the CSV reader could not split the line into the header's columns
 ``conflicting_*``      differs from an already stored (or same-file) record with the same key
 =====================  =====================================================
+
+Identifiers (``site_id``, ``participant_id``, ``cluster_id``, ``stratum``) are
+normalised before anything else: Unicode NFC, then leading and trailing
+white space (blanks, tabs, line breaks) removed; every other field loses
+leading and trailing blanks.  Values that may be identifiers in the wrong column
+are never copied to ``quarantine.offending_value``: a site not in the
+registry, a number that does not parse, a text that is too long, and every
+identifier.
 """
 
 from __future__ import annotations
@@ -67,23 +77,57 @@ def known_columns(kind: str) -> set[str]:
     return {c.name for c in columns_of(INPUT_MODELS[kind])}
 
 
+#: text columns normalised as identifiers (NFC + trim) and checked for control characters
+ID_COLUMNS: tuple[str, ...] = ("site_id", "participant_id", "cluster_id", "stratum")
+#: columns whose control characters quarantine the row (the pseudonym's inputs)
+CONTROL_CHECKED: tuple[str, ...] = ("site_id", "participant_id")
+#: white space trimmed from both ends of every text value
+_SPACE = "' ' || chr(9) || chr(10) || chr(11) || chr(12) || chr(13)"
+#: a plain ISO 8601 calendar date; nothing else is read as a date
+ISO_DATE_RE = "[0-9]{4}-[0-9]{2}-[0-9]{2}"
+#: a plain decimal number (optional sign, digits, point, exponent) or an infinity / NaN token
+NUMBER_RE = r"[+-]?([0-9]+([.][0-9]*)?|[.][0-9]+)([eE][+-]?[0-9]+)?|(?i:[+-]?(inf|infinity|nan))"
+_NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
+                  "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE")
+
+
+def is_numeric_type(dtype: str) -> bool:
+    return dtype in _NUMERIC_TYPES or dtype.startswith("DECIMAL")
+
+
 def _raw_text(col: str, dtype: str) -> str:
-    """Raw column as trimmed text with '' turned into NULL."""
-    if dtype == "VARCHAR":
-        return f"NULLIF(trim({_q(col)}), '')"
-    return f"CAST({_q(col)} AS VARCHAR)"
+    """Raw column as trimmed text with '' turned into NULL.
+
+    Identifiers are NFC-normalised and trimmed of every white-space character (they are
+    hashed: a stray tab would make another participant); other fields lose blanks only
+    (trimming the whole set costs 3x as much, and a tab in a date or number is reported).
+    """
+    text = _q(col) if dtype == "VARCHAR" else f"CAST({_q(col)} AS VARCHAR)"
+    if col in ID_COLUMNS:
+        return f"NULLIF(trim(nfc_normalize({text}), {_SPACE}), '')"
+    return f"NULLIF(trim({text}), '')"
 
 
 def _parse_expr(spec: ColumnSpec, raw: str, dtype: str) -> str:
     t = spec.python_type
-    typed = dtype != "VARCHAR"          # Parquet columns that already carry a type parse directly
+    col = _q(spec.name)
     if spec.sql_type == "DATE":
-        return f"TRY_CAST({_q(spec.name) if typed else raw} AS DATE)"
+        if dtype == "DATE":
+            return col
+        if dtype == "TIMESTAMP WITH TIME ZONE":       # the calendar date in UTC, whatever the host's zone
+            return f"CAST(timezone('UTC', {col}) AS DATE)"
+        if dtype.startswith("TIMESTAMP"):
+            return f"CAST({col} AS DATE)"
+        return f"CASE WHEN regexp_full_match({raw}, '{ISO_DATE_RE}') THEN TRY_CAST({raw} AS DATE) END"
     if spec.sql_type == "DOUBLE":
-        return f"TRY_CAST({_q(spec.name) if typed else raw} AS DOUBLE)"
+        if is_numeric_type(dtype):
+            return f"CAST({col} AS DOUBLE)"
+        return f"CASE WHEN regexp_full_match({raw}, '{NUMBER_RE}') THEN TRY_CAST({raw} AS DOUBLE) END"
     if spec.sql_type == "BOOLEAN":
         if dtype == "BOOLEAN":
-            return _q(spec.name)
+            return col
+        if is_numeric_type(dtype):                  # 1/0 stored as numbers (pandas writes 1.0/0.0 next to a NaN)
+            return f"CASE WHEN {col} = 1 THEN TRUE WHEN {col} = 0 THEN FALSE END"
         true = ", ".join(f"'{v}'" for v in spec.extra.get("true_tokens", ("true",)))
         false = ", ".join(f"'{v}'" for v in spec.extra.get("false_tokens", ("false",)))
         return (f"CASE WHEN lower({raw}) IN ({true}) THEN TRUE "
@@ -95,7 +139,7 @@ def _parse_expr(spec: ColumnSpec, raw: str, dtype: str) -> str:
 
 
 def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, ...],
-                     id_expr_sql) -> ParsePlan:
+                     id_expr_sql, also_required: tuple[str, ...] = ()) -> ParsePlan:
     """Build the parse/check plan for a staged file.
 
     Parameters
@@ -105,9 +149,12 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
         ``{"field": "TYPE"}`` where the staged table's columns already carry the field names.
     covariates : declared covariates present in the file (assignment files only).
     id_expr_sql : callable ``(site_sql, id_sql) -> sql`` giving the pseudonym expression.
+    also_required : optional fields the study makes required (``cluster_id`` under cluster
+        randomisation): an empty value is quarantined as ``missing_value``.
 
-    The generated SQL binds ``$today`` (DATE), ``$registry`` (VARCHAR[]; empty = no
-    registry check) and ``$outcomes`` (VARCHAR[]; empty = any outcome name).
+    The generated SQL binds ``$today`` (DATE), ``$earliest`` (DATE, start of the plausible
+    window), ``$registry`` (VARCHAR[]; empty = no registry check) and ``$outcomes``
+    (VARCHAR[]; empty = any outcome name).
     """
     specs = columns_of(INPUT_MODELS[kind])
     # inner level: every raw column trimmed once ("__t_<name>"); the outer level parses and checks
@@ -132,6 +179,9 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
             select.append(f"CASE WHEN {raw} IS NOT NULL AND {site_raw} IS NOT NULL "
                           f"THEN {id_expr_sql(site_raw, raw)} END AS participant_key")
             checks.append(Check(name, "missing_id", f"{_q(raw_col + '_null')}", "NULL"))
+            if name in CONTROL_CHECKED:
+                select.append(f"regexp_matches({raw}, '[\\x00-\\x1f\\x7f-\\x9f]') AS {_q('_ctl_' + name)}")
+                checks.append(Check(name, "control_character", f"coalesce({_q('_ctl_' + name)}, FALSE)", "NULL"))
             max_len = _max_length(spec)
             if max_len:
                 select.append(f"length({raw}) > {max_len} AS {_q('_long_' + name)}")
@@ -141,16 +191,22 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
         select.append(f"{_parse_expr(spec, raw, dtype)} AS {_q(name)}")
         value_columns.append(name)
         shown = f"left({_q(raw_col)}, 200)"
-        if spec.required:
+        if spec.required or name in also_required:
             checks.append(Check(name, "missing_value", f"{_q(raw_col)} IS NULL", "NULL"))
+        if name in CONTROL_CHECKED:
+            checks.append(Check(name, "control_character",
+                                f"coalesce(regexp_matches({_q(raw_col)}, '[\\x00-\\x1f\\x7f-\\x9f]'), FALSE)", "NULL"))
         notnull = f"{_q(raw_col)} IS NOT NULL"
         if spec.sql_type == "DATE":
             checks.append(Check(name, "invalid_date",
                                 f"{notnull} AND ({_q(name)} IS NULL OR {_q(name)} < DATE '1900-01-01')", shown))
+            checks.append(Check(name, "implausible_date",
+                                f"{_q(name)} >= DATE '1900-01-01' AND {_q(name)} < $earliest", shown))
             if spec.extra.get("not_future"):
                 checks.append(Check(name, "future_date", f"{_q(name)} > $today", shown))
         elif spec.sql_type == "DOUBLE":
-            checks.append(Check(name, "not_a_number", f"{notnull} AND {_q(name)} IS NULL", shown))
+            # a value that does not parse as a number may be an identifier in the wrong column: not copied
+            checks.append(Check(name, "not_a_number", f"{notnull} AND {_q(name)} IS NULL", "NULL"))
             checks.append(Check(name, "not_finite", f"NOT isfinite({_q(name)})", shown))
         elif spec.sql_type == "BOOLEAN":
             checks.append(Check(name, "invalid_boolean", f"{notnull} AND {_q(name)} IS NULL", shown))
@@ -160,11 +216,12 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
         else:
             max_len = _max_length(spec)
             if max_len:
-                checks.append(Check(name, "too_long", f"length({_q(name)}) > {max_len}", shown))
+                checks.append(Check(name, "too_long", f"length({_q(name)}) > {max_len}", "NULL"))
         if spec.extra.get("registry"):
+            # a site outside the registry may be a participant id in the wrong column: not copied
             checks.append(Check(name, "unknown_site",
                                 # list_contains first: DuckDB evaluates it 25x faster than behind IS NOT NULL
-                                f"NOT list_contains($registry, {_q(name)}) AND len($registry) > 0", shown))
+                                f"NOT list_contains($registry, {_q(name)}) AND len($registry) > 0", "NULL"))
         if spec.extra.get("declared") == "outcomes":
             checks.append(Check(name, "unknown_outcome",
                                 f"NOT list_contains($outcomes, {_q(name)}) AND len($outcomes) > 0", shown))
@@ -173,9 +230,12 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
         raw_col = f"_raw_cov_{cov}"
         parsed = f"_cov_{cov}"
         select.append(f"{raw} AS {_q(raw_col)}")
-        select.append(f"TRY_CAST({raw} AS DOUBLE) AS {_q(parsed)}")
+        dtype = columns.get(cov, "VARCHAR")
+        number = (f"CAST({_q(cov)} AS DOUBLE)" if is_numeric_type(dtype) else
+                  f"CASE WHEN regexp_full_match({raw}, '{NUMBER_RE}') THEN TRY_CAST({raw} AS DOUBLE) END")
+        select.append(f"{number} AS {_q(parsed)}")
         shown = f"left({_q(raw_col)}, 200)"
-        checks.append(Check(cov, "not_a_number", f"{_q(raw_col)} IS NOT NULL AND {_q(parsed)} IS NULL", shown))
+        checks.append(Check(cov, "not_a_number", f"{_q(raw_col)} IS NOT NULL AND {_q(parsed)} IS NULL", "NULL"))
         checks.append(Check(cov, "not_finite", f"NOT isfinite({_q(parsed)})", shown))
     sql = "SELECT " + ", ".join(select) + " FROM (SELECT *, " + ", ".join(inner) + " FROM _stage)"
     return ParsePlan(kind, sql, tuple(checks), tuple(value_columns), tuple(covariates))

@@ -123,7 +123,7 @@ def _select_sql(table: str, neutralise_text: bool) -> tuple[str, list[str]]:
 
 
 def _copy_atomic(con: duckdb.DuckDBPyConnection, select_sql: str, run_id: str, target: Path,
-                 fmt: str, text_cols: list[str]) -> None:
+                 fmt: str, text_cols: list[str], mode: int = 0o600) -> None:
     tmp = target.with_name(f".{target.name}.{secrets.token_hex(6)}.tmp")
     if fmt == "parquet":
         options = "FORMAT parquet"
@@ -133,6 +133,7 @@ def _copy_atomic(con: duckdb.DuckDBPyConnection, select_sql: str, run_id: str, t
         options = f"FORMAT csv, HEADER true{force}"
     try:
         con.execute(f"COPY ({select_sql}) TO ? ({options})", [run_id, str(tmp)])
+        os.chmod(tmp, mode)
         os.replace(tmp, target)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -140,7 +141,7 @@ def _copy_atomic(con: duckdb.DuckDBPyConnection, select_sql: str, run_id: str, t
 
 
 def export_tables(con: duckdb.DuckDBPyConnection, out_dir: Path, fmt: str = "parquet",
-                  run_id: str | None = None) -> list[Path]:
+                  run_id: str | None = None, mode: int = 0o600) -> list[Path]:
     """Write one file per result table with the rows of one run.
 
     Parameters
@@ -154,6 +155,8 @@ def export_tables(con: duckdb.DuckDBPyConnection, out_dir: Path, fmt: str = "par
         File format (case-insensitive).
     run_id : str, optional
         Run to export; default the latest finished run.
+    mode : int
+        Permission bits of every file (default 0600: owner only).
 
     Returns
     -------
@@ -166,7 +169,7 @@ def export_tables(con: duckdb.DuckDBPyConnection, out_dir: Path, fmt: str = "par
     ValueError
         Unknown ``fmt``; the message names the nearest accepted format.
     ExportError
-        Unknown ``run_id``, or no finished run.
+        Unknown ``run_id``, no finished run, or ``out_dir`` is an existing file.
 
     Notes
     -----
@@ -180,13 +183,18 @@ def export_tables(con: duckdb.DuckDBPyConnection, out_dir: Path, fmt: str = "par
     OWASP Foundation. "CSV Injection". https://owasp.org/www-community/attacks/CSV_Injection
     """
     key = _check_format(fmt)
-    rid = resolve_run_id(con, run_id)
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    if out.exists() and not out.is_dir():
+        raise ExportError(f"--out {out} is a file; give a directory for the exported tables")
+    rid = resolve_run_id(con, run_id)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except (FileExistsError, NotADirectoryError):
+        raise ExportError(f"--out {out}: a parent of it is a file, not a directory") from None
     written: list[Path] = []
     for table in RESULT_TABLES:
         sql, text_cols = _select_sql(table, neutralise_text=(key == "csv"))
         target = out / f"{table}.{FORMATS[key]}"
-        _copy_atomic(con, sql, rid, target, key, text_cols)
+        _copy_atomic(con, sql, rid, target, key, text_cols, mode)
         written.append(target)
     return written

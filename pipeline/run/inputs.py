@@ -22,7 +22,37 @@ from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, clus
                                             outcome_names, site_outcome_moments)
 from takeup.schemas.config import StudyConfig
 
-__all__ = ["RunContext", "RunInputs", "new_run_context", "collect_inputs", "input_fingerprint"]
+from takeup.pipeline.errors import OptionError
+
+__all__ = ["RunContext", "RunInputs", "new_run_context", "collect_inputs", "input_fingerprint", "check_as_of",
+           "AS_OF_MARGIN_DAYS"]
+
+#: a cutoff may lie at most this many days after the later of today and the latest record date
+AS_OF_MARGIN_DAYS = 366
+
+
+def check_as_of(con: duckdb.DuckDBPyConnection, as_of: date | None, today: date | None = None) -> None:
+    """Refuse a cutoff outside the data's range plus a margin (:class:`OptionError`, a usage error).
+
+    The trends cover every period from the first assignment to the cutoff, so a mistyped
+    year would make a run compute (and store) decades of empty periods; a cutoff before the
+    first assignment has nothing to estimate.
+    """
+    if as_of is None:
+        return
+    today = today or datetime.now(timezone.utc).date()
+    first, last = con.execute("""
+        SELECT (SELECT min(assigned_on) FROM assignments),
+               greatest((SELECT max(assigned_on) FROM assignments), (SELECT max(observed_on) FROM uptake_events),
+                        (SELECT max(measured_on) FROM outcome_measurements))
+    """).fetchone()
+    upper = max(last or today, today) + timedelta(days=AS_OF_MARGIN_DAYS)
+    if as_of > upper:
+        basis = f"the latest record is dated {last}" if last else "the warehouse holds no records yet"
+        raise OptionError(f"--as-of {as_of} is too far ahead: {basis}; a cutoff may be at most {AS_OF_MARGIN_DAYS} "
+                          f"days after the later of today and that date (up to {upper})")
+    if first is not None and as_of < first:
+        raise OptionError(f"--as-of {as_of} is before the first assignment ({first}): nothing would be estimated")
 
 
 @dataclass(frozen=True)

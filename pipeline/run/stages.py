@@ -35,7 +35,7 @@ from typing import Any, Callable, Iterator, Protocol, Sequence
 import duckdb
 
 from takeup.pipeline.run.alert_rules import compute_alerts
-from takeup.pipeline.run.inputs import RunContext, RunInputs, collect_inputs, new_run_context
+from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, collect_inputs, new_run_context
 from takeup.pipeline.run.pooled_rows import pool_outcome
 from takeup.pipeline.run.sequence_rows import add_sequences, precision_rows
 from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
@@ -196,6 +196,7 @@ def run_monitoring(warehouse: Path | str, as_of: date | None = None, config: Stu
     """Compute one run in process (no orchestration API) and write it."""
     con = connect(warehouse)
     try:
+        check_as_of(con, as_of)
         ctx = new_run_context(resolve_config(con, config), as_of=as_of, data_cutoff=data_cutoff)
         timings: dict = {}
         start_run(con, ctx)

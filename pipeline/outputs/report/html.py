@@ -21,6 +21,7 @@ from takeup.pipeline.outputs.report.cells import esc as _e, integer as _int, int
 from takeup.pipeline.outputs.report.cells import pct as _pct, pval as _p, records as _records, table as _table
 from takeup.pipeline.outputs.report import many_sites
 from takeup.pipeline.outputs.report.charts import figure_svg, forest_figure, uptake_figure
+from takeup.pipeline.errors import ReportError
 from takeup.pipeline.outputs.report.data import ACTIVE_STATUSES, ReportData, as_text_date, is_uptake_rule, load_report_data
 
 __all__ = ["render_report", "report_html"]
@@ -389,7 +390,7 @@ def report_html(d: ReportData, max_flagged: int = 30, n_influential: int = 10) -
 
 
 def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | None = None,
-                  max_flagged: int = 30, n_influential: int = 10) -> Path:
+                  max_flagged: int = 30, n_influential: int = 10, mode: int = 0o600) -> Path:
     """Write the self-contained HTML report of one run.
 
     Parameters
@@ -406,6 +407,9 @@ def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | 
         Many-site layout only (more than 40 sites): the forest plot and trend panels show
         at most ``max_flagged`` sites with an active alert and the ``n_influential``
         other sites whose removal moves the pooled CACE most.
+    mode : int
+        Permission bits of the file (default 0600: owner only; the report shows
+        per-site results and data-quality details).
 
     Returns
     -------
@@ -415,7 +419,7 @@ def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | 
     Raises
     ------
     takeup.pipeline.outputs.report.ReportError
-        No finished run yet, or ``run_id`` unknown.
+        No finished run yet, ``run_id`` unknown, or ``out_path`` is a directory.
 
     References
     ----------
@@ -429,13 +433,20 @@ def render_report(con: duckdb.DuckDBPyConnection, out_path: Path, run_id: str | 
     Higgins, J. P. T. and Thompson, S. G. (2002). Quantifying heterogeneity
     in a meta-analysis. Statistics in Medicine 21(11), 1539-1558.
     """
+    out = Path(out_path)
+    if out.is_dir():
+        raise ReportError(f"--out {out} is a directory; give the HTML file to write, e.g. {out / 'report.html'}")
+    if out.parent.exists() and not out.parent.is_dir():
+        raise ReportError(f"--out {out}: {out.parent} is not a directory")
     data = load_report_data(con, run_id)
     text = report_html(data, max_flagged=max_flagged, n_influential=n_influential)
-    out = Path(out_path)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.with_name(f".{out.name}.{secrets.token_hex(6)}.tmp")
     try:
-        tmp.write_text(text, encoding="utf-8")
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        os.chmod(tmp, mode)
         os.replace(tmp, out)
     except BaseException:
         tmp.unlink(missing_ok=True)
