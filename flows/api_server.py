@@ -8,7 +8,7 @@ bound to ``127.0.0.1`` on a chosen port, waits until it answers, and prints the
 ``takeup serve`` commands then talk to it over HTTP and skip the start-up.  The ephemeral API
 stays the fallback when the variable is unset.
 
-No Prefect import here: the server is Prefect's own command, run as a child process.
+The server is Prefect's own command, run as a child process.
 """
 
 from __future__ import annotations
@@ -107,6 +107,9 @@ def check_configured_api(timeout: float = 5.0) -> str | None:
         client): start the server (``takeup api-server``) or unset the variable.
     """
     url = os.environ.get("PREFECT_API_URL", "").strip()
+    if not url:
+        from prefect.settings import PREFECT_API_URL    # a Prefect profile or a test harness may set it
+        url = (PREFECT_API_URL.value() or "").strip()
     if not url:
         return None
     if not api_is_up(url, timeout=timeout):

@@ -522,6 +522,12 @@ def cmd_api_server(args) -> int:
     if not 1 <= args.port <= 65535:
         raise UsageError(f"--port must be between 1 and 65535, got {args.port}")
     from takeup.flows.api_server import DEFAULT_HOST, api_url, start_api_server, wait_until_up
+    import signal
+
+    def _stop(signum, frame):              # SIGTERM (service managers) stops the server like Ctrl-C
+        raise KeyboardInterrupt
+    signal.signal(signal.SIGINT, signal.default_int_handler)   # even when started with SIGINT ignored (`cmd &`)
+    signal.signal(signal.SIGTERM, _stop)
     url = api_url(DEFAULT_HOST, args.port)
     process = start_api_server(DEFAULT_HOST, args.port, log_path=args.server_log)
     try:
