@@ -199,3 +199,50 @@ def test_icc_from_baseline_clusters_and_notes():
     lone = frame[frame.site_id == "S000"].drop_duplicates("cluster_id").head(1)
     single = detect_cluster_drift(lone, 4, 3.0, 2000.0)
     assert all("not estimable" in n or "no cluster" in n for n in single.notes)
+
+
+# ----------------------------------------------------------------------------- end to end from the CLI
+def test_cli_run_charts_cluster_summaries(tmp_path, key_env, capsys):
+    """Files of a cluster-randomised study -> ``takeup ingest`` -> ``takeup run``: the site with the planted
+    control-arm rise (odds x 3 from week 20) gets ``control_uptake_drift``, the two clean sites get no drift
+    alert, and the cohort rows carry the cluster-summary chart."""
+    import duckdb
+
+    from takeup.pipeline.cli import main
+    from takeup.pipeline.warehouse import init_warehouse
+    from takeup.schemas.config import parse_config
+    rng = np.random.default_rng(21)
+    kw = dict(weeks=52, cluster_sd=0.5, clusters=(40, 40), mean_size=40)
+    planted = cluster_season(rng, 1, shift_week=20, **kw)
+    clean = cluster_season(rng, 2, **kw)
+    clean["site_id"] = clean.site_id.map({"S000": "S001", "S001": "S002"})
+    counts = pd.concat([planted, clean], ignore_index=True)
+    counts["cluster_id"] = counts.site_id + "-" + counts.cluster_id
+    counts["period_start"] -= pd.Timedelta(weeks=52)       # a season that ended before today (no future dates)
+    rep = counts.loc[counts.index.repeat(counts.n_assigned)].reset_index(drop=True)
+    k = rep.groupby(["site_id", "cluster_id", "period_start"]).cumcount()
+    took = k < rep.n_taken_up                       # the row's first x participants took up
+    pid = rep.cluster_id + "-" + rep.period_start.dt.strftime("%Y%m%d") + "-" + k.astype(str)
+    assigned = rep.period_start.dt.date
+    pd.DataFrame({"site_id": rep.site_id, "participant_id": pid, "arm": np.where(rep.z == 1, "treatment", "control"),
+                  "assigned_on": assigned.astype(str), "cluster_id": rep.cluster_id}).to_csv(tmp_path / "a.csv",
+                                                                                           index=False)
+    pd.DataFrame({"site_id": rep.site_id, "participant_id": pid,
+                  "observed_on": (rep.period_start + pd.Timedelta(days=3)).dt.date.astype(str),
+                  "took_up": np.where(took, "yes", "no")}).to_csv(tmp_path / "u.csv", index=False)
+    cfg = parse_config({"randomisation_unit": "cluster", "outcomes": [{"name": "y"}],
+                        "follow_up": {"min_days": 0, "max_days": 400}})
+    wh = tmp_path / "w.duckdb"
+    init_warehouse(wh, cfg)
+    assert main(["ingest", "--warehouse", str(wh), "--quiet", str(tmp_path / "a.csv"), str(tmp_path / "u.csv")]) == 0
+    as_of = (START + timedelta(days=30)).isoformat()
+    assert main(["run", "--warehouse", str(wh), "--as-of", as_of, "--quiet"]) in (0, 1)
+    capsys.readouterr()
+    con = duckdb.connect(str(wh), read_only=True)
+    alerts = con.execute("SELECT site_id, rule FROM latest_alerts WHERE rule LIKE '%uptake_drift'").fetchall()
+    charted = con.execute("SELECT count(*) FROM latest_uptake_trends WHERE basis = 'cohort' AND cusum IS NOT NULL "
+                          "AND cusum_limit IS NOT NULL").fetchone()[0]
+    con.close()
+    assert ("S000", "control_uptake_drift") in alerts
+    assert not [a for a in alerts if a[0] != "S000"], alerts
+    assert charted > 0
