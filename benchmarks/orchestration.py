@@ -58,6 +58,13 @@ def timed_run(warehouse: Path, as_of: date, orchestrated: bool, env: dict) -> fl
     return elapsed
 
 
+def timed_import(module: str, env: dict) -> float:
+    """A fresh process that only imports ``module`` (what every command pays before any work)."""
+    t0 = time.perf_counter()
+    subprocess.run([sys.executable, "-c", f"import {module}"], env=env, check=True)
+    return time.perf_counter() - t0
+
+
 def start_server(port: int, env: dict) -> tuple[subprocess.Popen, str, float]:
     t0 = time.perf_counter()
     proc = subprocess.Popen([TAKEUP, "api-server", "--port", str(port)], env=env, stdout=subprocess.PIPE,
@@ -91,6 +98,7 @@ def main() -> None:
             warehouse, as_of = build_demo(Path(tmp))
         times: dict[str, list[float]] = {"in process": [], "orchestrated, ephemeral API": [],
                                          "orchestrated, running server": []}
+        imports: dict[str, list[float]] = {"takeup.pipeline.cli": [], "takeup.flows.monitor": []}
         proc, url, startup = start_server(args.port, env)
         try:
             with_server = dict(env, PREFECT_API_URL=url)
@@ -98,6 +106,8 @@ def main() -> None:
                 times["in process"].append(timed_run(warehouse, as_of, False, env))
                 times["orchestrated, ephemeral API"].append(timed_run(warehouse, as_of, True, env))
                 times["orchestrated, running server"].append(timed_run(warehouse, as_of, True, with_server))
+                for module in imports:
+                    imports[module].append(timed_import(module, env))
         finally:
             proc.send_signal(signal.SIGTERM)
             try:
@@ -111,6 +121,9 @@ def main() -> None:
         med = statistics.median(ts)
         over = "floor" if mode == "in process" else f"{med - floor:+.1f}"
         print(f"| {mode} | {med:.1f} | {min(ts):.1f} | {over} |")
+    for module, ts in imports.items():
+        print(f"| (only `import {module}`, fresh process) | {statistics.median(ts):.1f} | {min(ts):.1f} | "
+              f"{statistics.median(ts) - statistics.median(imports['takeup.pipeline.cli']):+.1f} vs the CLI import |")
     print(f"\n`takeup api-server` start-up (once, until it answers): {startup:.1f} s; {args.repeats} repeats per mode, "
           f"interleaved; {os.cpu_count()} CPU(s).")
 
