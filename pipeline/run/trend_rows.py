@@ -52,6 +52,14 @@ statistic after each monitored period is written into ``cusum`` (and ``h``
 into ``cusum_limit``) of the cohort rows; rows before the first monitored
 period have both null.
 
+Under cluster randomisation (``randomisation_unit = "cluster"``) the charts run
+on cluster-level cohort summaries instead (:func:`detect_cluster_drift`): every
+cluster is one observation at the cohort of its first reported participant,
+with its counts divided by its design effect ``1 + (n - 1) rho`` (Rao & Scott
+1992 [3]_; :mod:`takeup.pipeline.stats.drift.clustering`), and everything above
+(baseline, shrinkage, design, calibration, ARL) is counted in these effective
+participants.
+
 References
 ----------
 .. [1] Reynolds, M. R. Jr. and Stoumbos, Z. G. (1999). A CUSUM chart for
@@ -59,6 +67,8 @@ References
    Quality Technology* 31(1), 87-108.
 .. [2] Page, E. S. (1954). Continuous inspection schemes. *Biometrika*
    41(1/2), 100-115.
+.. [3] Rao, J. N. K. and Scott, A. J. (1992). A simple method for the analysis
+   of clustered binary data. *Biometrics* 48(2), 577-585.
 """
 
 from __future__ import annotations
