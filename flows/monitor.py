@@ -20,6 +20,7 @@ from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.runtime import flow_run as runtime_flow_run
 
+from takeup.flows.api_server import check_configured_api
 from takeup.flows.runners import make_task_runner
 from takeup.pipeline.run import stages as core
 from takeup.pipeline.run import writer
@@ -97,7 +98,12 @@ def monitor_flow(warehouse: str, as_of: str | None = None, config_json: str | No
 
 def run_orchestrated(warehouse: Path | str, as_of: date | None = None, config: StudyConfig | None = None,
                      runner: str | None = None, dask_address: str | None = None):
-    """Execute :func:`monitor_flow` through Prefect with the chosen task runner."""
+    """Execute :func:`monitor_flow` through Prefect with the chosen task runner.
+
+    Against the server in ``PREFECT_API_URL`` when it is set (checked first:
+    :func:`takeup.flows.api_server.check_configured_api`), else Prefect's ephemeral API.
+    """
+    check_configured_api()
     cfg_for_runner = config
     con = connect(warehouse, read_only=False)
     try:

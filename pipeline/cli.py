@@ -165,6 +165,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--incoming", type=Path, default=None,
                    help="directory the scheduled ingest picks files up from (default: none; monitoring only)")
     p.add_argument("--once", action="store_true", help="register the deployments and exit (no serving loop)")
+
+    p = sub.add_parser("api-server", help="start a local Prefect API server for orchestrated runs to reuse",
+                       description="Start 'prefect server start' on 127.0.0.1:PORT, wait until it answers and print "
+                                   "the PREFECT_API_URL to export: orchestrated runs, the demo and serve then use this "
+                                   "server instead of starting Prefect's ephemeral API each time (about 10-15 s). "
+                                   "Runs until interrupted (Ctrl-C stops the server).")
+    p.add_argument("--port", type=int, default=4200, help="port on 127.0.0.1 (default 4200)")
+    p.add_argument("--server-log", type=Path, default=None, metavar="FILE",
+                   help="append the server's own output to FILE (default: discarded)")
+    p.add_argument("--log-level", default="warning", choices=["debug", "info", "warning", "error"],
+                   help="logging verbosity on stderr")
     return parser
 
 
@@ -316,7 +327,8 @@ def _run_now(warehouse: Path, as_of, config_path, orchestrated: bool, runner, da
 
 
 def _print_summary(s) -> None:
-    mode = "orchestrated (Prefect flow run " + str(s.flow_run_id) + ")" if s.mode == "orchestrated" else \
+    api = os.environ.get("PREFECT_API_URL") or "the ephemeral API"
+    mode = f"orchestrated (Prefect flow run {s.flow_run_id} on {api})" if s.mode == "orchestrated" else \
         "in process (no orchestration API)"
     print(f"run {s.run_id}: {s.status}; mode {mode}; as of {s.as_of}; {s.n_sites} sites")
     rows = ", ".join(f"{k} {v}" for k, v in s.rows.items())
@@ -506,8 +518,39 @@ def cmd_serve(args) -> int:
     return EXIT_OK
 
 
+def cmd_api_server(args) -> int:
+    if not 1 <= args.port <= 65535:
+        raise UsageError(f"--port must be between 1 and 65535, got {args.port}")
+    from takeup.flows.api_server import DEFAULT_HOST, api_url, start_api_server, wait_until_up
+    import signal
+
+    def _stop(signum, frame):              # SIGTERM (service managers) stops the server like Ctrl-C
+        raise KeyboardInterrupt
+    signal.signal(signal.SIGINT, signal.default_int_handler)   # even when started with SIGINT ignored (`cmd &`)
+    signal.signal(signal.SIGTERM, _stop)
+    url = api_url(DEFAULT_HOST, args.port)
+    process = start_api_server(DEFAULT_HOST, args.port, log_path=args.server_log)
+    try:
+        wait_until_up(process, url)
+        print(f"Prefect API ready at {url} (server process {process.pid}); in the shells that run takeup:")
+        print(f"export PREFECT_API_URL={url}", flush=True)
+        print("Ctrl-C stops the server.", flush=True)
+        return EXIT_OK if process.wait() == 0 else EXIT_INFRA
+    except KeyboardInterrupt:
+        print("stopping the Prefect server ...", file=sys.stderr)
+        return EXIT_OK
+    finally:
+        if process.poll() is None:
+            process.terminate()
+            try:
+                process.wait(timeout=20)
+            except Exception:  # noqa: BLE001 (still running after 20 s: stop it hard)
+                process.kill()
+
+
 COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd_run, "runs": cmd_runs,
-            "alerts": cmd_alerts, "reproduce": cmd_reproduce, "export": cmd_export, "report": cmd_report, "serve": cmd_serve}
+            "alerts": cmd_alerts, "reproduce": cmd_reproduce, "export": cmd_export, "report": cmd_report, "serve": cmd_serve,
+            "api-server": cmd_api_server}
 
 
 def _one_line(exc: BaseException) -> str:

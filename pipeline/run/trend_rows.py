@@ -52,6 +52,14 @@ statistic after each monitored period is written into ``cusum`` (and ``h``
 into ``cusum_limit``) of the cohort rows; rows before the first monitored
 period have both null.
 
+Under cluster randomisation (``randomisation_unit = "cluster"``) the charts run
+on cluster-level cohort summaries instead (:func:`detect_cluster_drift`): every
+cluster is one observation at the cohort of its first reported participant,
+with its counts divided by its design effect ``1 + (n - 1) rho`` (Rao & Scott
+1992 [3]_; :mod:`takeup.pipeline.stats.drift.clustering`), and everything above
+(baseline, shrinkage, design, calibration, ARL) is counted in these effective
+participants.
+
 References
 ----------
 .. [1] Reynolds, M. R. Jr. and Stoumbos, Z. G. (1999). A CUSUM chart for
@@ -59,12 +67,14 @@ References
    Quality Technology* 31(1), 87-108.
 .. [2] Page, E. S. (1954). Continuous inspection schemes. *Biometrika*
    41(1/2), 100-115.
+.. [3] Rao, J. N. K. and Scott, A. J. (1992). A simple method for the analysis
+   of clustered binary data. *Biometrics* 48(2), 577-585.
 """
 
 from __future__ import annotations
 
 import functools
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from datetime import date
 
 import numpy as np
@@ -72,6 +82,7 @@ import pandas as pd
 
 from takeup.pipeline.stats.drift.baseline import baseline_rate
 from takeup.pipeline.stats.drift.chart import bernoulli_cusum, shifted_rate
+from takeup.pipeline.stats.drift.clustering import design_effects, icc_anova
 from takeup.pipeline.stats.drift.design import calibrate_for_estimated_level, design_cusum
 from takeup.pipeline.stats.drift.run_length import arl_bernoulli
 from takeup.pipeline.stats.drift.shrinkage import shrink_rates
@@ -79,7 +90,8 @@ from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.run.site_rows import clean
 
 __all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "closed_cohort_counts", "ARMS_BY_Z",
-           "DESIGN_REL_TOL"]
+           "DESIGN_REL_TOL", "ClusterDriftCounts", "cluster_drift_counts", "detect_cluster_drift",
+           "closed_cohort_clusters"]
 
 #: arm label by assignment indicator z (0 control, 1 treatment)
 ARMS_BY_Z: tuple[str, str] = ("control", "treatment")
@@ -133,6 +145,16 @@ class DriftResult:
         Statistic after each period; NaN before the first monitored period.
     notes : tuple of str
         ``""`` or why the chart is undefined / not running yet.
+    n_monitored : ndarray
+        Participants the chart has run over (after the baseline); under cluster
+        randomisation *effective* participants (uptake reports divided by the cluster's
+        design effect, :mod:`takeup.pipeline.stats.drift.clustering`).
+    unit : str
+        ``participant`` (cohorts of participants) or ``cluster`` (cluster-level cohort
+        summaries with the Rao & Scott adjustment, under cluster randomisation).
+    icc : ndarray
+        Intra-cluster correlation of the series' arm used for the design effects (NaN on
+        the participant unit).
 
     References
     ----------
@@ -161,6 +183,9 @@ class DriftResult:
     n_monitored_periods: np.ndarray
     path: np.ndarray
     notes: tuple[str, ...]
+    n_monitored: np.ndarray = field(default_factory=lambda: _readonly([]))
+    unit: str = "participant"
+    icc: np.ndarray = field(default_factory=lambda: _readonly([]))
 
     def index(self, site_id: str, arm: str) -> int | None:
         """Position of the series ``(site_id, arm)``, or None when absent."""
@@ -183,18 +208,18 @@ def _as_dates(col: pd.Series) -> pd.Series:
     return pd.to_datetime(col).dt.date
 
 
-def _normalise(frame: pd.DataFrame | None) -> pd.DataFrame:
-    """A copy with typed columns (never mutate the input)."""
+def _normalise(frame: pd.DataFrame | None, counts: str = "int64") -> pd.DataFrame:
+    """A copy with typed columns (never mutate the input); ``counts="float64"`` keeps effective counts."""
     cols = ["site_id", "z", "period_start", *_COUNT_COLUMNS]
     if frame is None or len(frame) == 0:
-        return pd.DataFrame({c: pd.Series(dtype=object if c in ("site_id", "period_start") else "int64")
+        return pd.DataFrame({c: pd.Series(dtype=object if c in ("site_id", "period_start") else counts)
                              for c in cols})
     f = frame.loc[:, cols].copy()
     f["site_id"] = f["site_id"].astype(str)
     f["z"] = f["z"].astype(int)
     f["period_start"] = _as_dates(f["period_start"])
     for c in _COUNT_COLUMNS:
-        f[c] = pd.to_numeric(f[c], errors="coerce").fillna(0).astype("int64")
+        f[c] = pd.to_numeric(f[c], errors="coerce").fillna(0).astype(counts)
     # one row per site x arm x period (sum duplicates defensively)
     return f.groupby(["site_id", "z", "period_start"], as_index=False)[list(_COUNT_COLUMNS)].sum()
 
@@ -281,7 +306,7 @@ def _empty_drift() -> DriftResult:
                        signalled=_readonly([], bool), first_signal_period=(), change_period=(), statistic=e,
                        peak_statistic=e, recent_uptake=e, earlier_uptake=e,
                        n_recent_periods=_readonly([], np.int64), n_monitored_periods=_readonly([], np.int64),
-                       path=_readonly(np.zeros((0, 0))), notes=())
+                       path=_readonly(np.zeros((0, 0))), notes=(), n_monitored=e, icc=e)
 
 
 #: in-control levels are rounded to this step on the logit scale (odds within +/-5%) before a
@@ -388,7 +413,7 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
     """
     if calibration not in ("estimated_level", "known_level"):
         raise ValueError(f"calibration must be 'estimated_level' or 'known_level', got {calibration!r}")
-    f = _normalise(cohort_counts)
+    f = _normalise(cohort_counts, counts="float64")
     if f.empty:
         return _empty_drift()
     sites = sorted(f["site_id"].unique())
@@ -485,6 +510,8 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
         recent_uptake=_readonly(recent), earlier_uptake=_readonly(earlier),
         n_recent_periods=_readonly(n_recent, np.int64), n_monitored_periods=_readonly(n_monitored, np.int64),
         path=_readonly(path), notes=tuple(notes),
+        n_monitored=_readonly(np.where(monitored, n, 0.0).sum(axis=1)),
+        icc=_readonly(np.full(n_series, np.nan)),
     )
 
 
@@ -544,6 +571,137 @@ def closed_cohort_counts(cohort: pd.DataFrame, as_of: date, period_days: int, up
     return f[(last_due <= pd.Timestamp(as_of)).to_numpy()].reset_index(drop=True)
 
 
+@dataclass(frozen=True)
+class ClusterDriftCounts:
+    """Cluster-level cohort summaries for the drift charts (cluster randomisation).
+
+    Attributes
+    ----------
+    counts : DataFrame
+        site_id, z, period_start, n_assigned, n_observed, n_taken_up per site x arm x entry
+        period, in *effective* participants: each cluster's uptake reports and uptakes divided
+        by its design effect, summed over the clusters that entered in the period.
+    icc : dict
+        Arm (z) -> :class:`~takeup.pipeline.stats.drift.clustering.IccEstimate`.
+    n_clusters : int
+        Clusters with at least one uptake report in a closed cohort.
+    """
+
+    counts: pd.DataFrame
+    icc: dict
+    n_clusters: int
+
+
+def cluster_drift_counts(cluster_counts: pd.DataFrame, baseline_periods: int) -> ClusterDriftCounts:
+    """Cluster-level cohort summaries with the Rao & Scott design-effect adjustment.
+
+    Parameters
+    ----------
+    cluster_counts : DataFrame
+        site_id, z, period_start, cluster_id, n_observed, n_taken_up (cohorts whose uptake
+        window has closed; not modified).
+    baseline_periods : int
+        The intra-cluster correlation of each arm is estimated from the clusters that entered
+        in the first ``baseline_periods`` entry periods of their site x arm (the in-control
+        data, like the chart's level); when those give no between-cluster degrees of freedom,
+        from all clusters of the arm.
+
+    Returns
+    -------
+    ClusterDriftCounts
+
+    Notes
+    -----
+    A cluster is one observation dated at its entry period (the cohort of its first
+    participant with an uptake report), so clusters are independent across periods even when
+    a cluster enrols over several weeks; its uptake count ``x`` and reports ``n`` become
+    ``x/d`` and ``n/d`` with ``d = 1 + (n - 1) rho`` (Kish 1965; the adjustment of Rao & Scott
+    1992), ``rho`` the arm's ANOVA intra-cluster correlation pooled within sites
+    (:func:`~takeup.pipeline.stats.drift.clustering.icc_anova`).
+
+    References
+    ----------
+    .. [1] Rao, J. N. K. and Scott, A. J. (1992). A simple method for the analysis of
+       clustered binary data. *Biometrics* 48(2), 577-585.
+    .. [2] Kish, L. (1965). *Survey Sampling*. New York: Wiley.
+    """
+    cols = ["site_id", "z", "period_start", "cluster_id", "n_observed", "n_taken_up"]
+    empty = _normalise(None, counts="float64")
+    if cluster_counts is None or len(cluster_counts) == 0:
+        return ClusterDriftCounts(empty, {}, 0)
+    f = cluster_counts.loc[:, cols].copy()
+    f["site_id"] = f["site_id"].astype(str)
+    f["z"] = f["z"].astype(int)
+    f["cluster_id"] = f["cluster_id"].astype(str)
+    f["period_start"] = _as_dates(f["period_start"])
+    for c in ("n_observed", "n_taken_up"):
+        f[c] = pd.to_numeric(f[c], errors="coerce").fillna(0).astype(float)
+    f = f[f["n_observed"] > 0]
+    if f.empty:
+        return ClusterDriftCounts(empty, {}, 0)
+    cl = f.groupby(["site_id", "z", "cluster_id"], as_index=False).agg(
+        period_start=("period_start", "min"), n=("n_observed", "sum"), x=("n_taken_up", "sum"))
+    entry_rank = cl.groupby(["site_id", "z"])["period_start"].rank(method="dense")
+    in_base = (entry_rank <= int(baseline_periods)).to_numpy()
+    rho = np.full(len(cl), np.nan)
+    icc = {}
+    z = cl["z"].to_numpy()
+    for arm in (0, 1):                         # two arms, each estimate vectorised over clusters
+        m = z == arm
+        if not m.any():
+            continue
+        est = icc_anova(cl["x"].to_numpy()[m & in_base], cl["n"].to_numpy()[m & in_base],
+                        cl["site_id"].to_numpy()[m & in_base])
+        if not np.isfinite(est.rho):
+            est = icc_anova(cl["x"].to_numpy()[m], cl["n"].to_numpy()[m], cl["site_id"].to_numpy()[m])
+        icc[arm] = est
+        rho[m] = est.rho
+    d = design_effects(cl["n"].to_numpy(), rho)
+    eff = pd.DataFrame({"site_id": cl["site_id"], "z": cl["z"], "period_start": cl["period_start"],
+                        "n_observed": cl["n"].to_numpy() / d, "n_taken_up": cl["x"].to_numpy() / d})
+    eff = eff[np.isfinite(d)]
+    eff["n_assigned"] = eff["n_observed"]
+    counts = eff.groupby(["site_id", "z", "period_start"], as_index=False)[list(_COUNT_COLUMNS)].sum()
+    return ClusterDriftCounts(counts, icc, int(len(cl)))
+
+
+def detect_cluster_drift(cluster_counts: pd.DataFrame, baseline_periods: int, odds_ratio: float,
+                         target_arl0: float, baseline: str = "shrunk",
+                         calibration: str = "estimated_level") -> DriftResult:
+    """Drift charts on cluster-level cohort summaries (cluster randomisation).
+
+    :func:`cluster_drift_counts` turns the clusters into effective counts; :func:`detect_drift`
+    then runs unchanged on them (design, calibration and ARL in effective participants).
+    A series whose arm has no intra-cluster correlation estimate gets no chart and a note.
+
+    References
+    ----------
+    .. [1] Rao, J. N. K. and Scott, A. J. (1992). A simple method for the analysis of
+       clustered binary data. *Biometrics* 48(2), 577-585.
+    """
+    summary = cluster_drift_counts(cluster_counts, baseline_periods)
+    drift = detect_drift(summary.counts, baseline_periods, odds_ratio, target_arl0, baseline=baseline,
+                         calibration=calibration)
+    arms = [1 if a == "treatment" else 0 for a in drift.arm]
+    rho = np.array([summary.icc[a].rho if a in summary.icc else np.nan for a in arms])
+    notes = []
+    for note, a in zip(drift.notes, arms):       # one string per series
+        est = summary.icc.get(a)
+        extra = ("chart on cluster-level cohort summaries: no cluster with an uptake report in a closed cohort"
+                 if est is None else est.note)
+        notes.append("; ".join(p for p in (extra, note) if p))
+    return replace(drift, unit="cluster", icc=_readonly(rho), notes=tuple(notes))
+
+
+def closed_cohort_clusters(cluster_counts: pd.DataFrame, as_of: date, period_days: int, uptake_window_days: int
+                           ) -> pd.DataFrame:
+    """Rows of the site x arm x period x cluster counts whose uptake window has closed by ``as_of``."""
+    if cluster_counts is None or len(cluster_counts) == 0:
+        return pd.DataFrame(columns=["site_id", "z", "period_start", "cluster_id", "n_observed", "n_taken_up"])
+    last_due = pd.to_datetime(cluster_counts["period_start"]) + pd.Timedelta(days=period_days - 1 + uptake_window_days)
+    return cluster_counts[(last_due <= pd.Timestamp(as_of)).to_numpy()].reset_index(drop=True)
+
+
 def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], DriftResult]:
     """``uptake_trends`` rows (cohort and calendar bases) and the drift charts.
 
@@ -571,8 +729,14 @@ def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], Drif
     a = ctx.config.alerts
     closed = closed_cohort_counts(inputs.cohort_counts, ctx.as_of, ctx.config.trends.period_days,
                                   ctx.config.trends.uptake_window_days)
-    drift = detect_drift(closed, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
-                         baseline=a.drift_baseline, calibration=a.drift_calibration)
+    if ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None:
+        closed_clusters = closed_cohort_clusters(inputs.cluster_cohort_counts, ctx.as_of,
+                                                 ctx.config.trends.period_days, ctx.config.trends.uptake_window_days)
+        drift = detect_cluster_drift(closed_clusters, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
+                                     baseline=a.drift_baseline, calibration=a.drift_calibration)
+    else:
+        drift = detect_drift(closed, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
+                             baseline=a.drift_baseline, calibration=a.drift_calibration)
     grid = _grid(_normalise(inputs.cohort_counts))
     cv = cl = None
     if len(grid) and len(drift.site_id):
