@@ -154,13 +154,14 @@ def simulate_look_p_values(n_sites: int, looks: int, seed: int, q: float = 0.05,
                     ob_c[:, rec].sum(1)]
             args = [np.asarray(a, float) for a in args]
             ok = np.all([a > 0 for a in (args[1], args[3], args[5], args[7])], axis=0)
-            res = two_proportion_difference_test(*[np.maximum(a, 1) if i % 2 else a for i, a in enumerate(args)],
-                                                 alternative="decline")
-            p = np.where(ok, res.p_value, np.nan)
-            per_run["first_stage_decline"][:, j] = p
+            safe = [np.maximum(a, 1) if i % 2 else a for i, a in enumerate(args)]
+            res = two_proportion_difference_test(*safe, alternative="decline")
+            per_run["first_stage_decline"][:, j] = np.where(ok, res.p_value, np.nan)
+            res = two_proportion_difference_test(*safe, alternative="decline", variance="pooled_by_arm")
             # the look number counts runs with estimates for the site: weeks since its first participant
             look = np.maximum(w - start, 1)
-            anytime["first_stage_decline"][:, j] = at.spent_p_value(p, look, planned_looks)
+            anytime["first_stage_decline"][:, j] = at.spent_p_value(np.where(ok, res.p_value, np.nan), look,
+                                                                    planned_looks)
     levels = {r: q for r in names}
     levels["sample_ratio_mismatch"] = srm_level
     return LookPValues(per_run, anytime, levels)

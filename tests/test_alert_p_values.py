@@ -4,7 +4,8 @@ Each rule's statistic is computed from an outside reference (scipy, statsmodels)
 the anytime-valid p-value independently of the project's closed forms: the normal mixtures by
 scipy's numerical integration of the mixture martingale (Howard et al. 2021), the sample-ratio
 Bayes factor by scipy.stats.betabinom / binom (Lindon & Malek 2022), the moving-window test by
-the spending share 1/(2 x 52) at the first look; then Benjamini-Hochberg by statsmodels'
+the spending share 1/(2 x 52) at the first look (on the decline z with each arm's rate pooled
+over the two windows, statsmodels' pooled two-proportion variance); then Benjamini-Hochberg by statsmodels'
 multipletests.  The hand-built inputs come from tests/test_alerts_rules.py.
 """
 
@@ -12,13 +13,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-import statsmodels.api as sm
 from scipy import integrate, stats
 from scipy.special import lambertw
 from statsmodels.stats.multitest import multipletests
 from statsmodels.stats.proportion import proportions_ztest
 
-from tests.test_alerts_rules import balanced_counts, by_rule, expand, make_config, run, site_row
+from tests.test_alerts_rules import balanced_counts, by_rule, make_config, run, site_row
 
 ANYTIME = {"alert_tests": "anytime_valid"}
 HORIZON = 1000.0
@@ -109,10 +109,19 @@ def test_first_stage_decline_spends_its_level_over_looks():
             rows += [(s, 1, p, 20, 20, te if p < 4 else tr), (s, 0, p, 20, 20, ce if p < 4 else cr)]
     raw = []
     for te, ce, tr, cr in sites.values():
-        df = expand({(1, 0): (80, 4 * te), (0, 0): (80, 4 * ce), (1, 1): (80, 4 * tr), (0, 1): (80, 4 * cr)})
-        X = sm.add_constant(np.column_stack([df.z, df.recent, df.z * df.recent]).astype(float))
-        fit = sm.OLS(df.d.to_numpy(float), X).fit(cov_type="HC0")   # statsmodels reference, as per run
-        raw.append(stats.norm.cdf(fit.tvalues[3]))
+        # each arm's change between the windows with the pooled two-proportion variance, checked
+        # against statsmodels' proportions_ztest (z = difference / sqrt(variance)) where it is defined
+        var, diff = 0.0, 0.0
+        for sign, (early, recent) in ((1, (te, tr)), (-1, (ce, cr))):
+            d = (early - recent) * 4 / 80
+            pooled = (early + recent) * 4 / 160
+            v = pooled * (1 - pooled) * (1 / 80 + 1 / 80)
+            if d != 0:
+                z, _ = proportions_ztest([4 * early, 4 * recent], [80, 80])
+                assert d / np.sqrt(v) == pytest.approx(z, rel=1e-12)
+            var += v
+            diff += sign * d
+        raw.append(stats.norm.sf(diff / np.sqrt(var)))                # H1: the first stage declined
     for look in (1, 60):
         site_rows = [dict(site_row(s), look=look) for s in sites]
         out = by_rule(run(rows, site_rows, config=make_config(sequential=ANYTIME)), "first_stage_decline")

@@ -21,7 +21,8 @@ it into the p-value the rule compares with its level, according to
   ``sample_ratio_mismatch``           beta-binomial mixture Bayes factor of the arm counts against
                                       the designed share (Lindon & Malek 2022), tuned at the horizon
   ``first_stage_decline``             moving window: the level spent over the site's looks
-                                      (``planned_looks``; union bound)
+                                      (``planned_looks``; union bound), on the decline z with
+                                      each arm's rate pooled over the two windows
   ==================================  ===============================================================
 
   The normal mixtures are tuned with ``[sequential] horizon_participants`` and
@@ -42,7 +43,8 @@ import numpy as np
 from takeup.pipeline.run.inputs import RunContext
 from takeup.pipeline.stats import anytime_tests
 
-__all__ = ["anytime_valid", "negative_first_stage_p", "two_sided_p", "sample_ratio_p", "decline_p"]
+__all__ = ["anytime_valid", "negative_first_stage_p", "two_sided_p", "sample_ratio_p", "decline_p",
+           "decline_variance"]
 
 _MIXTURE = "anytime-valid over weekly runs"
 
@@ -87,6 +89,16 @@ def sample_ratio_p(units_t, units_c, share, p_fixed, ctx: RunContext) -> tuple[n
     c = anytime_tests.ratio_concentration(ctx.config.alerts.srm_p_value, ctx.config.sequential.horizon_participants)
     p = anytime_tests.ratio_mixture_p_value(units_t, units_c, share, c)
     return p, _MIXTURE + ": beta-binomial mixture"
+
+
+def decline_variance(ctx: RunContext) -> str:
+    """Variance of the decline test: pooled by arm (under "no change") with anytime-valid tests.
+
+    The per-run test keeps its unpooled Wald variance; with a small early window whose cells are
+    all 0 or all 1 that variance collapses and the test rejects clean sites far too often, which
+    no spending over looks can repair (``benchmarks/weekly_false_alerts.py`` measures both).
+    """
+    return "pooled_by_arm" if anytime_valid(ctx) else "unpooled"
 
 
 def decline_p(p_fixed, look, ctx: RunContext) -> tuple[np.ndarray, str]:

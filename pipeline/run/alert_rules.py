@@ -327,7 +327,8 @@ def _first_stage_decline(inputs: RunInputs, ctx: RunContext, a, looks: dict | No
                 & (n["n_t_recent"] + n["n_t_early"] >= a.min_arm_size)
                 & (n["n_c_recent"] + n["n_c_early"] >= a.min_arm_size))
     test = _difference_test(n["x_t_recent"], n["n_t_recent"], n["x_c_recent"], n["n_c_recent"],
-                            n["x_t_early"], n["n_t_early"], n["x_c_early"], n["n_c_early"])
+                            n["x_t_early"], n["n_t_early"], n["x_c_early"], n["n_c_early"],
+                            variance=alert_p_values.decline_variance(ctx))
     p_one = test["p_less"]
     how = "one-sided test"
     if ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None:
@@ -797,9 +798,9 @@ def _two_prop(x1, n1, x2, n2) -> dict:
 
 
 def _difference_test(x_t_recent, n_t_recent, x_c_recent, n_c_recent,
-                     x_t_early, n_t_early, x_c_early, n_c_early) -> dict:
+                     x_t_early, n_t_early, x_c_early, n_c_early, variance: str = "unpooled") -> dict:
     res = significance.two_proportion_difference_test(x_t_early, n_t_early, x_c_early, n_c_early,
                                                     x_t_recent, n_t_recent, x_c_recent, n_c_recent,
-                                                    alternative="decline")
+                                                    alternative="decline", variance=variance)
     return {"p_less": np.asarray(res.p_value, float), "fs_recent": np.asarray(res.first_stage_recent, float),
             "fs_early": np.asarray(res.first_stage_early, float), "z": np.asarray(res.z, float)}
