@@ -91,7 +91,7 @@ def simulate_look_p_values(n_sites: int, looks: int, seed: int, q: float = 0.05,
     arrivals = rng.poisson(rate[:, None] * (np.arange(weeks)[None, :] >= start[:, None]))
     n_t = rng.binomial(arrivals, 0.5)
     n_c = arrivals - n_t
-    complier = rng.beta(11, 9, k)
+    complier = np.minimum(rng.beta(11, 9, k), 0.95)
     always = np.minimum(rng.beta(2, 25, k), 0.95 - complier)
     no_rep = rng.uniform(0.0, 0.06, k)[:, None]
     mis_up_t, mis_up_c = rng.binomial(n_t, no_rep), rng.binomial(n_c, no_rep)
