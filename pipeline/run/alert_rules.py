@@ -552,15 +552,14 @@ def _missing_uptake(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
         g = _clusters_by_site(inputs).set_index("site_id").reindex(m["site_id"].astype(str)).fillna(0.0)
         info = g["g_t"].to_numpy(float) + g["g_c"].to_numpy(float)
     p_one, anytime = alert_p_values.two_sided_p(np.where(testable, p_one, np.nan), info, ctx)
-    if anytime:
-        how = f"{how}, {anytime}"
     p_adj = _bh(np.where(testable, p_one, np.nan))
     worst = np.fmax(sh_t, sh_c)
     by_share = np.isfinite(worst) & (worst > a.missing_uptake_share)
     by_test = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
     for i in np.flatnonzero(by_share | by_test):
-        p_txt = (f"{how} of equal shares: BH-adjusted p = {_p(p_adj[i])}" if np.isfinite(p_adj[i])
+        p_txt = (f"{how} of equal shares{', ' + anytime if anytime else ''}: BH-adjusted p = {_p(p_adj[i])}"
+                 if np.isfinite(p_adj[i])
                  else "no test of equal shares (an arm too small)")
         if by_share[i]:
             value, threshold = worst[i], a.missing_uptake_share

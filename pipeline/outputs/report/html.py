@@ -61,7 +61,6 @@ tbody tr:nth-child(even) { background: #fafafa; }
 figure { margin: 8px 0 14px; }
 figure svg { width: 100%; height: auto; display: block; }
 figcaption { font-size: .88rem; color: var(--muted); margin-top: 4px; }
-td { overflow-wrap: anywhere; }
 sup.fn { font-size: .72em; color: var(--muted); margin-left: 2px; }
 ol.footnotes { font-size: .84rem; color: var(--muted); margin: -4px 0 14px; padding-left: 22px; }
 section#cautions { background: var(--band); padding: 4px 18px 12px; margin-top: 34px; }
