@@ -60,6 +60,13 @@ uses no BH: its threshold (default 0.001) is already strict, chosen as in
 practice (common practice) for a check that is run on every site at every
 run.  Other rules compare a statistic with a threshold and have no p-value.
 
+Weekly looks: by default (``[sequential] alert_tests = "anytime_valid"``) the p-values of
+``negative_first_stage``, ``first_stage_decline``, ``differential_missing_outcomes``,
+``missing_uptake_reports`` (its test) and ``sample_ratio_mismatch`` are anytime-valid
+(:mod:`takeup.pipeline.run.alert_p_values`): a clean site raises such a rule in *any* of
+the weekly runs at most with the rule's level, and BH applies to these p-values unchanged.
+``outlier_site`` compares sites with each other at one look and keeps its per-run test.
+
 Columns: for threshold rules ``value`` and ``threshold`` are on the same
 scale (F and ``weak_first_stage_f``; CUSUM and its limit ``h``; days since
 the latest record and ``stale_days``).  For test rules ``value`` is the
