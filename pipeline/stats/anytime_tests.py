@@ -25,9 +25,9 @@ Three constructions, chosen by the kind of statistic:
             \Phi\Bigl(z_t \sqrt{\tfrac{v}{1 + v}}\Bigr),
             \qquad v = t\rho^2,
 
-  for the alternative "larger" (use :math:`-z_t` for "smaller"); the one-sided
-  normal mixture of Howard et al. (2021, Section 3 and Proposition 5's
-  one-sided variant).  :math:`t` is the intrinsic time (participants, or
+  for the alternative "larger" (use :math:`-z_t` for "smaller"): the one-sided
+  normal mixture of Howard et al. (2021) (derived here by completing the square;
+  the tests check it against numerical integration).  :math:`t` is the intrinsic time (participants, or
   clusters under cluster randomisation) and :math:`\rho^2` the tuning of
   :func:`~takeup.pipeline.stats.sequential.mixture_rho2`.
 
