@@ -63,11 +63,15 @@ def site_names(k: int) -> list[str]:
 
 def simulate_clean_study(n_sites: int, seed: int, median_weekly: float = 10.0, cace_mean: float = 6.0,
                          cace_sd: float = 1.0, share_two_to_one: float = 0.1,
-                         planted_cace: dict[int, float] | None = None) -> CleanStudy:
+                         planted_cace: dict[int, float] | None = None, season_weeks: int = SEASON_WEEKS,
+                         null_first_stage: int = 0) -> CleanStudy:
     """Simulate one clean study (see the module docstring for the model).
 
     ``planted_cace`` (site index -> true CACE) replaces the drawn effect of a few sites:
-    the one departure from "clean", for tests that need a known outlier.
+    the one departure from "clean", for tests that need a known outlier.  ``season_weeks``
+    sets the cutoff (the last day of that week).  ``null_first_stage`` (default 0): the last
+    that many sites have no compliers (uptake 30% in both arms: the boundary of the null
+    of ``negative_first_stage``), drawn after everything else so the other sites are unchanged.
     """
     import pyarrow as pa
     from takeup.schemas.config import FollowUp, OutcomeSpec, SiteSpec, StudyConfig
@@ -75,7 +79,7 @@ def simulate_clean_study(n_sites: int, seed: int, median_weekly: float = 10.0, c
     rng = np.random.default_rng(seed)
     k = n_sites
     names = site_names(k)
-    as_of = SEASON_START + timedelta(weeks=SEASON_WEEKS) - timedelta(days=1)
+    as_of = SEASON_START + timedelta(weeks=season_weeks) - timedelta(days=1)
     # --- sites
     start_week = rng.integers(0, 6, k)
     rate = median_weekly * np.exp(rng.normal(0.0, 0.55, k))
@@ -91,9 +95,12 @@ def simulate_clean_study(n_sites: int, seed: int, median_weekly: float = 10.0, c
     for i, value in (planted_cace or {}).items():
         cace[i] = value
     # --- accrual: weekly Poisson counts per site, then participants
-    weeks = np.arange(SEASON_WEEKS)
+    if null_first_stage:
+        complier[k - null_first_stage:] = 0.0
+        always[k - null_first_stage:] = 0.3
+    weeks = np.arange(season_weeks)
     counts = rng.poisson(rate[:, None] * (weeks[None, :] >= start_week[:, None]))
-    site = np.repeat(np.repeat(np.arange(k), SEASON_WEEKS), counts.ravel())
+    site = np.repeat(np.repeat(np.arange(k), season_weeks), counts.ravel())
     week = np.repeat(np.tile(weeks, k), counts.ravel())
     n = site.size
     day0 = np.datetime64(SEASON_START)

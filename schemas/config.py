@@ -252,6 +252,15 @@ class SequentialSettings(_Cfg):
                                                     "randomisation) at which a site's sequence is tightest; the "
                                                     "pooled sequence uses the sum over the pooled sites. Valid at "
                                                     "every look whatever its value.")
+    alert_tests: Literal["anytime_valid", "per_run"] = Field(
+        default="anytime_valid",
+        description="P-values of the test-based alert rules: anytime-valid (a clean site raises a rule over all "
+                    "weekly runs together at most with the rule's level), or per_run (fixed-sample, valid for one "
+                    "look only; kept to compare).")
+    planned_looks: int = Field(default=52, ge=1,
+                               description="Runs over which the moving-window test (first_stage_decline) spends its "
+                                           "level evenly (52 = a year of weekly runs); later runs get a decreasing "
+                                           "share, so the bound holds for any number of runs.")
 
 
 class PlanningSettings(_Cfg):

@@ -52,9 +52,14 @@ def activity(sites, last=AS_OF) -> pd.DataFrame:
                          "last_received_at": [pd.Timestamp(last)] * len(sites), "n_batches": [3] * len(sites)})
 
 
-def make_config(sites=(), **alerts) -> StudyConfig:
+def make_config(sites=(), sequential: dict | None = None, **alerts) -> StudyConfig:
+    """A study config; the alert tests per run by default (the references here are fixed-sample tests).
+
+    ``tests/test_alert_p_values.py`` checks the anytime-valid p-values built on the same statistics.
+    """
     data = {"outcomes": [{"name": OUTCOME, "primary": True}], "sites": [{"site_id": s} if isinstance(s, str) else s
-                                                                         for s in sites]}
+                                                                         for s in sites],
+            "sequential": sequential if sequential is not None else {"alert_tests": "per_run"}}
     if alerts:
         data["alerts"] = alerts
     return StudyConfig.model_validate(data)

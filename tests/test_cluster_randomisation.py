@@ -44,7 +44,12 @@ def clean_sites(rng, n_sites: int):
                                        "n_taken_up"])
 
 
-def srm_alerts(cluster_counts: pd.DataFrame, unit: str, srm_p: float) -> set:
+def srm_alerts(cluster_counts: pd.DataFrame, unit: str, srm_p: float, sequential: dict | None = None) -> set:
+    """Sites with a sample-ratio alert; per-run tests unless ``sequential`` says otherwise.
+
+    The calibration checks here (and benchmarks/calibration.py) measure one look, so they use
+    the per-run chi-square; tests/test_alert_p_values.py covers the anytime-valid version.
+    """
     cohort = cluster_counts.groupby(["site_id", "z", "period_start"], as_index=False)[
         ["n_assigned", "n_observed", "n_taken_up"]].sum()
     sites = tuple(sorted(cohort.site_id.unique()))
@@ -54,7 +59,8 @@ def srm_alerts(cluster_counts: pd.DataFrame, unit: str, srm_p: float) -> set:
                        covariate_cells=pd.DataFrame(), cohort_counts=cohort, calendar_counts=cohort,
                        site_activity=act, previous_alerts=pd.DataFrame(), previous_run_id=None, n_batches=1,
                        input_fingerprint="x", cluster_cohort_counts=cluster_counts if unit == "cluster" else None)
-    cfg = StudyConfig.model_validate({"randomisation_unit": unit, "alerts": {"srm_p_value": srm_p}})
+    cfg = StudyConfig.model_validate({"randomisation_unit": unit, "alerts": {"srm_p_value": srm_p},
+                                      "sequential": sequential or {"alert_tests": "per_run"}})
     now = pd.Timestamp(AS_OF).to_pydatetime()
     ctx = RunContext(run_id="r", as_of=AS_OF, started_at=now, data_cutoff=now, config=cfg)
     out = compute_alerts(inputs, ctx, [], [], [], detect_drift(cohort.iloc[0:0], 4, 3.0, 2000.0))
@@ -88,6 +94,24 @@ def test_cluster_srm_message_counts_clusters_and_participants():
     assert srm_alerts(frame, "cluster", 0.001) == {"A"}
     chi2, _, p = sample_ratio_test([[18, 2]], [0.5, 0.5])   # 18 vs 2 clusters: p = 3.5e-4
     assert p[0] < 0.001
+
+
+def test_cluster_srm_anytime_valid_needs_a_cluster_horizon():
+    """The sequential test counts clusters too; its mixture is tuned at the horizon in clusters.
+
+    At the default horizon (1,000, meant for participants) even 20 vs 0 clusters stays above 0.001
+    (beta-binomial p = 0.089); with the planned 20 clusters per site, 19 vs 1 is flagged (scipy's
+    chi-square p = 6e-5; the mixture's p = 3.1e-4) and 18 vs 2 not yet (mixture p = 0.0036).
+    """
+    def frame(t, c):
+        rows = [("A", 1, pd.Timestamp(START), f"K{i}", 10, 10, 5) for i in range(t)]
+        rows += [("A", 0, pd.Timestamp(START), f"C{i}", 30, 30, 5) for i in range(c)]
+        return pd.DataFrame(rows, columns=["site_id", "z", "period_start", "cluster_id", "n_assigned",
+                                           "n_observed", "n_taken_up"])
+    seq = {"alert_tests": "anytime_valid", "horizon_participants": 20}
+    assert srm_alerts(frame(19, 1), "cluster", 0.001, seq) == {"A"}
+    assert srm_alerts(frame(18, 2), "cluster", 0.001, seq) == set()
+    assert srm_alerts(frame(20, 0), "cluster", 0.001, {"alert_tests": "anytime_valid"}) == set()
 
 
 def _participants(rng, G=14):

@@ -102,3 +102,44 @@ def test_dumped_dom_has_the_sections(chromium, report, tmp_path):
         assert f'id="{i}"' in dom, i
     assert dom.count("<svg") == 2             # both charts parsed as inline SVG
     assert "<script" not in dom
+
+
+_WIDTH_PROBE = """<script>
+window.addEventListener('load', function () {
+  var out = {too_wide: [], tables: 0};
+  document.querySelectorAll('table').forEach(function (tb, i) {
+    out.tables += 1;
+    var w = tb.getBoundingClientRect().width, c = tb.parentElement.clientWidth;
+    if (w > c + 1) out.too_wide.push((tb.id || ('table ' + i)) + ': ' + w + ' > ' + c);
+  });
+  out.page_overflow = document.documentElement.scrollWidth > window.innerWidth;
+  var pre = document.createElement('pre'); pre.id = 'probe-result'; pre.textContent = JSON.stringify(out);
+  document.body.appendChild(pre);
+});
+</script>"""
+
+
+def test_small_study_tables_fit_the_page_at_1280(chromium, report, tmp_path):
+    """Every table of the small-study layout (pooling, precision, sites, alerts, data) fits its container.
+
+    The probe script is added to a copy of the page only (the report itself has no script).
+    """
+    import json
+    import re
+    page = tmp_path / "probe.html"
+    # a control that must be caught: a table with an unbreakable cell inside a 200 px box
+    control = ('<div style="width:200px;overflow:hidden"><table id="wide-control"><tr><td class="num">'
+               + "9" * 300 + "</td></tr></table></div>")
+    page.write_text(report.read_text(encoding="utf-8").replace("</body>", control + _WIDTH_PROBE + "</body>", 1),
+                    encoding="utf-8")
+    r = _run(chromium, tmp_path / "profile", "--virtual-time-budget=5000", f"--window-size={WIDTH},3000",
+             "--dump-dom", page.as_uri())
+    assert r.returncode == 0, r.stderr[-2000:]
+    m = re.search(r'<pre id="probe-result">(.*?)</pre>', r.stdout, re.S)
+    assert m, "the page did not finish loading"
+    out = json.loads(m.group(1).replace("&quot;", '"').replace("&gt;", ">").replace("&lt;", "<").replace("&amp;", "&"))
+    assert out["tables"] >= 6
+    assert [w.split(":")[0] for w in out["too_wide"]] == ["wide-control"]
+    assert out["page_overflow"] is False
+    text = report.read_text(encoding="utf-8")
+    assert 'id="precision-table"' in text and 'id="alert-validity"' in text

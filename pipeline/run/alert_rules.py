@@ -60,6 +60,13 @@ uses no BH: its threshold (default 0.001) is already strict, chosen as in
 practice (common practice) for a check that is run on every site at every
 run.  Other rules compare a statistic with a threshold and have no p-value.
 
+Weekly looks: by default (``[sequential] alert_tests = "anytime_valid"``) the p-values of
+``negative_first_stage``, ``first_stage_decline``, ``differential_missing_outcomes``,
+``missing_uptake_reports`` (its test) and ``sample_ratio_mismatch`` are anytime-valid
+(:mod:`takeup.pipeline.run.alert_p_values`): a clean site raises such a rule in *any* of
+the weekly runs at most with the rule's level, and BH applies to these p-values unchanged.
+``outlier_site`` compares sites with each other at one look and keeps its per-run test.
+
 Columns: for threshold rules ``value`` and ``threshold`` are on the same
 scale (F and ``weak_first_stage_f``; CUSUM and its limit ``h``; days since
 the latest record and ``stale_days``).  For test rules ``value`` is the
@@ -112,6 +119,7 @@ import pandas as pd
 from scipy import stats
 
 from takeup.pipeline.stats import significance
+from takeup.pipeline.run import alert_p_values
 from takeup.pipeline.stats.meta_analysis.influence import outlier_test
 from takeup.pipeline.run.pooled_rows import INFLUENCE_METHOD
 from takeup.pipeline.run.inputs import RunContext, RunInputs
@@ -184,7 +192,7 @@ def _primary_rows(site_rows: list[dict], outcome: str | None) -> pd.DataFrame:
     cols = ["site_id", "first_stage_f", "complier_share", "complier_share_se", "n_treatment", "n_control",
             "n_treatment_assigned", "n_control_assigned", "due_treatment", "due_control",
             "missing_outcome_treatment", "missing_outcome_control", "cace", "cace_se", "included_in_pool",
-            "status", "ci_df"]
+            "status", "ci_df", "information", "look"]
     frame = pd.DataFrame(rows)
     for c in cols:
         if c not in frame.columns:
@@ -226,7 +234,7 @@ def _weak_first_stage(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
     return out
 
 
-def _negative_first_stage(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
+def _negative_first_stage(rows: pd.DataFrame, outcome: str, a, ctx: RunContext) -> list[dict]:
     share = _float(rows["complier_share"])
     se = _float(rows["complier_share_se"])
     f = _float(rows["first_stage_f"])
@@ -241,6 +249,9 @@ def _negative_first_stage(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
     # H1: complier share < 0; t(G - 1) under cluster-robust SEs (ci_df), normal otherwise
     has_df = np.isfinite(df) & (df >= 1)
     p_raw = np.where(ok, np.where(has_df, stats.t.cdf(z, np.where(has_df, df, 1.0)), stats.norm.cdf(z)), np.nan)
+    info = _float(rows["information"])
+    info = np.where(np.isfinite(info), info, _float(rows["n_treatment_assigned"]) + _float(rows["n_control_assigned"]))
+    p_raw, anytime = alert_p_values.negative_first_stage_p(p_raw, info, ctx)
     p_adj = _bh(p_raw)
     hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
@@ -250,7 +261,8 @@ def _negative_first_stage(rows: pd.DataFrame, outcome: str, a) -> list[dict]:
         out.append(_alert(
             "negative_first_stage", site, outcome, share[i], a.fdr_q, p_adj[i],
             f"Uptake is lower among those offered the programme than among controls: complier share "
-            f"{share[i]:.3f} (SE {_num(se[i], 3)}; one-sided {ref} test of a negative first stage, BH-adjusted "
+            f"{share[i]:.3f} (SE {_num(se[i], 3)}; one-sided {ref} test of a negative first stage"
+            f"{', ' + anytime if anytime else ''}, BH-adjusted "
             f"p = {_p(p_adj[i])} <= q = {a.fdr_q:g}). The CACE of this site is not interpretable; "
             f"check how assignments were recorded and delivered."))
     return out
@@ -310,7 +322,7 @@ def decline_windows(cohort: pd.DataFrame, n_recent: int) -> pd.DataFrame:
     return out[cols]
 
 
-def _first_stage_decline(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+def _first_stage_decline(inputs: RunInputs, ctx: RunContext, a, looks: dict | None = None) -> list[dict]:
     t = ctx.config.trends
     cohort = closed_cohorts(inputs.cohort_counts, ctx.as_of, t.period_days, t.uptake_window_days)
     w = decline_windows(cohort, a.first_stage_decline_periods)
@@ -322,13 +334,19 @@ def _first_stage_decline(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
                 & (n["n_t_recent"] + n["n_t_early"] >= a.min_arm_size)
                 & (n["n_c_recent"] + n["n_c_early"] >= a.min_arm_size))
     test = _difference_test(n["x_t_recent"], n["n_t_recent"], n["x_c_recent"], n["n_c_recent"],
-                            n["x_t_early"], n["n_t_early"], n["x_c_early"], n["n_c_early"])
+                            n["x_t_early"], n["n_t_early"], n["x_c_early"], n["n_c_early"],
+                            variance=alert_p_values.decline_variance(ctx))
     p_one = test["p_less"]
     how = "one-sided test"
     if ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None:
         p_one = _clustered_decline_p(inputs, ctx, w, a)
         how = "one-sided test on cluster totals, t(G-2)"
     p_raw = np.where(eligible, p_one, np.nan)
+    # the site's look number (runs with its estimates so far, this one included); at least this run
+    look = np.array([max(1.0, float((looks or {}).get(s) or 1)) for s in w["site_id"]])
+    p_raw, anytime = alert_p_values.decline_p(p_raw, look, ctx)
+    if anytime:
+        how = f"{how}, {anytime}"
     p_adj = _bh(p_raw)
     hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
@@ -424,6 +442,7 @@ def _sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
     else:
         units_t, units_c = arms.n_t.to_numpy(float), arms.n_c.to_numpy(float)
     res = _srm_test(units_t, units_c, share)
+    res["p"], anytime = alert_p_values.sample_ratio_p(units_t, units_c, share, res["p"], ctx)
     hit = np.isfinite(res["p"]) & (res["p"] < a.srm_p_value)
     out = []
     for i in np.flatnonzero(hit):
@@ -435,7 +454,8 @@ def _sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
         out.append(_alert(
             "sample_ratio_mismatch", arms.at[i, "site_id"], None, obs, a.srm_p_value, res["p"][i],
             f"{counted} against the designed "
-            f"{_pct(share[i])}: chi-square {res['stat'][i]:.1f}, p = {_p(res['p'][i])} < {a.srm_p_value:g}. "
+            f"{_pct(share[i])}: chi-square {res['stat'][i]:.1f}, "
+            f"{f'p ({anytime})' if anytime else 'p'} = {_p(res['p'][i])} < {a.srm_p_value:g}. "
             f"Check the randomisation and how assignments are recorded."))
     return out
 
@@ -473,6 +493,10 @@ def _differential_missing(rows: pd.DataFrame, outcome: str, inputs: RunInputs, c
         cells = _cluster_cells(f, list(rows["site_id"].astype(str)), "n_missing", "n_due")
         p_one = np.asarray(significance.clustered_two_proportion_test(**cells).p_value, float)
         how = "two-sided test on cluster totals, t(G-2)"
+    info = (_float(rows["information"]) if ctx.config.randomisation_unit == "cluster" else nt_a + nc_a)
+    p_one, anytime = alert_p_values.two_sided_p(np.where(eligible, p_one, np.nan), info, ctx)
+    if anytime:
+        how = f"{how}, {anytime}"
     p_adj = _bh(np.where(eligible, p_one, np.nan))
     hit = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
@@ -530,13 +554,19 @@ def _missing_uptake(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
         cells = _cluster_cells(cc, list(m["site_id"]), "n_missing", "n_assigned")
         p_one = np.asarray(significance.clustered_two_proportion_test(**cells).p_value, float)
         how = "two-sided test on cluster totals, t(G-2)"
+    info = due_t + due_c
+    if ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None:
+        g = _clusters_by_site(inputs).set_index("site_id").reindex(m["site_id"].astype(str)).fillna(0.0)
+        info = g["g_t"].to_numpy(float) + g["g_c"].to_numpy(float)
+    p_one, anytime = alert_p_values.two_sided_p(np.where(testable, p_one, np.nan), info, ctx)
     p_adj = _bh(np.where(testable, p_one, np.nan))
     worst = np.fmax(sh_t, sh_c)
     by_share = np.isfinite(worst) & (worst > a.missing_uptake_share)
     by_test = np.isfinite(p_adj) & (p_adj <= a.fdr_q)
     out = []
     for i in np.flatnonzero(by_share | by_test):
-        p_txt = (f"{how} of equal shares: BH-adjusted p = {_p(p_adj[i])}" if np.isfinite(p_adj[i])
+        p_txt = (f"{how} of equal shares{', ' + anytime if anytime else ''}: BH-adjusted p = {_p(p_adj[i])}"
+                 if np.isfinite(p_adj[i])
                  else "no test of equal shares (an arm too small)")
         if by_share[i]:
             value, threshold = worst[i], a.missing_uptake_share
@@ -628,12 +658,14 @@ def evaluate_rules(inputs: RunInputs, ctx: RunContext, site_rows: list[dict], po
     rows = _primary_rows(site_rows, outcome)
     found: list[dict] = []
     if len(rows):
-        found += _negative_first_stage(rows, outcome, a)
+        found += _negative_first_stage(rows, outcome, a, ctx)
         found += _weak_first_stage(rows, outcome, a)
         found += _differential_missing(rows, outcome, inputs, ctx, a)
         found += _outliers(rows, outcome, influence_rows, a)
     found += _sample_ratio(inputs, ctx, a)
-    found += _first_stage_decline(inputs, ctx, a)
+    looks = ({str(s): k for s, k in zip(rows["site_id"], _float(rows["look"])) if np.isfinite(k)}
+             if len(rows) else {})
+    found += _first_stage_decline(inputs, ctx, a, looks)
     found += _missing_uptake(inputs, ctx, a)
     found += _drift(drift)
     found += _stale(inputs, ctx, a)
@@ -772,9 +804,9 @@ def _two_prop(x1, n1, x2, n2) -> dict:
 
 
 def _difference_test(x_t_recent, n_t_recent, x_c_recent, n_c_recent,
-                     x_t_early, n_t_early, x_c_early, n_c_early) -> dict:
+                     x_t_early, n_t_early, x_c_early, n_c_early, variance: str = "unpooled") -> dict:
     res = significance.two_proportion_difference_test(x_t_early, n_t_early, x_c_early, n_c_early,
                                                     x_t_recent, n_t_recent, x_c_recent, n_c_recent,
-                                                    alternative="decline")
+                                                    alternative="decline", variance=variance)
     return {"p_less": np.asarray(res.p_value, float), "fs_recent": np.asarray(res.first_stage_recent, float),
             "fs_early": np.asarray(res.first_stage_early, float), "z": np.asarray(res.z, float)}

@@ -306,7 +306,7 @@ class FirstStageChangeResult:
 def two_proportion_difference_test(
     x_t_early, n_t_early, x_c_early, n_c_early,
     x_t_recent, n_t_recent, x_c_recent, n_c_recent,
-    alternative: str = "decline",
+    alternative: str = "decline", variance: str = "unpooled",
 ) -> FirstStageChangeResult:
     """Test whether the first stage declined from earlier to recent cohorts.
 
@@ -319,6 +319,13 @@ def two_proportion_difference_test(
         Same for the recent cohorts (disjoint participants).
     alternative : {"decline", "increase", "two-sided"}
         ``"decline"`` (default) tests H1 ``pi_recent < pi_early``.
+    variance : {"unpooled", "pooled_by_arm"}
+        ``"unpooled"`` (default): the Wald variance below.  ``"pooled_by_arm"``:
+        each arm's rate pooled over the two cohort groups, as in the pooled
+        two-proportion z test, i.e. the variance under "no change in either
+        arm": ``V = p_T (1 - p_T) (1/n_T,early + 1/n_T,recent) + (same for C)``.
+        It cannot collapse to zero when a small early cell is all 0 or all 1,
+        which makes the Wald form reject far too often at small sites.
 
     Returns
     -------
@@ -348,6 +355,8 @@ def two_proportion_difference_test(
     options = ("decline", "increase", "two-sided")
     if alternative not in options:
         raise ValueError(f"alternative must be one of {options}")
+    if variance not in ("unpooled", "pooled_by_arm"):
+        raise ValueError(f"variance must be 'unpooled' or 'pooled_by_arm', got {variance!r}")
     names = ("x_t_early", "n_t_early", "x_c_early", "n_c_early",
              "x_t_recent", "n_t_recent", "x_c_recent", "n_c_recent")
     arrays = np.broadcast_arrays(*(_site_array(v, nm) for v, nm in zip(
@@ -364,6 +373,11 @@ def two_proportion_difference_test(
         pi_early = np.where(has_n, rates[0] - rates[1], np.nan)
         pi_recent = np.where(has_n, rates[2] - rates[3], np.nan)
         total_var = np.where(has_n, var[0] + var[1] + var[2] + var[3], np.nan)
+        if variance == "pooled_by_arm":
+            p_t = (xs[0] + xs[2]) / (ns[0] + ns[2])
+            p_c = (xs[1] + xs[3]) / (ns[1] + ns[3])
+            total_var = np.where(has_n, p_t * (1.0 - p_t) * (1.0 / ns[0] + 1.0 / ns[2])
+                                 + p_c * (1.0 - p_c) * (1.0 / ns[1] + 1.0 / ns[3]), np.nan)
         ok = has_n & (total_var > 0)
         se = np.where(ok, np.sqrt(total_var), np.nan)
         z = np.where(ok, (pi_early - pi_recent) / se, np.nan)

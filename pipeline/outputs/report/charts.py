@@ -203,6 +203,15 @@ def forest_figure(sites: pd.DataFrame, headline: Mapping[str, Any] | None, weak_
     yr = y - 0.28
     _segments(ax, yr, rob["a_low"], rob["a_high"], xlim, OKABE_ITO["vermillion"], "dashed", 1.8)
     _segments(ax, yr, rob["b_low"], rob["b_high"], xlim, OKABE_ITO["vermillion"], "dashed", 1.8)
+    # the anytime-valid CACE set (valid at every weekly look), thin sky blue with bar ends, just above
+    seq = anytime_intervals(sites)
+    ya = y + 0.26
+    for lo_k, hi_k in (("a_low", "a_high"), ("b_low", "b_high")):
+        _segments(ax, ya, seq[lo_k], seq[hi_k], xlim, OKABE_ITO["sky_blue"], "solid", 1.4)
+        for ends in (seq[lo_k], seq[hi_k]):
+            inside = np.isfinite(ends) & (ends >= xlim[0]) & (ends <= xlim[1])
+            ax.plot(ends[inside], ya[inside], linestyle="none", marker="|", color=OKABE_ITO["sky_blue"],
+                    markersize=7, markeredgewidth=1.6, zorder=3)
 
     right_labels = _site_labels(sites, est, lo, hi, rob)
     left_labels = [plain_text(s) + ("\nweak first stage" if w else "")
@@ -252,12 +261,37 @@ def forest_figure(sites: pd.DataFrame, headline: Mapping[str, Any] | None, weak_
         Line2D([], [], color=OKABE_ITO["black"], marker="s", label=f"site CACE, conventional {pct} CI"),
         Line2D([], [], color=OKABE_ITO["vermillion"], linestyle="--", marker="o", markerfacecolor="white",
                label=f"weak first stage (F < {weak_f:g}): tF or Anderson-Rubin interval"),
+        Line2D([], [], color=OKABE_ITO["sky_blue"], marker="|", markersize=8, markeredgewidth=1.6,
+               label="anytime-valid set (holds at every weekly look)"),
         Line2D([], [], color=_GREY, linestyle="none", marker=">", label="interval continues beyond the plot"),
         Patch(facecolor=OKABE_ITO["blue"], label=f"pooled CACE, {pct} CI"),
         Line2D([], [], color=OKABE_ITO["orange"], linewidth=3, label="prediction interval for a new site"),
     ]
     fig.legend(handles=handles, loc="outside lower center", ncol=3, frameon=False, fontsize=9)
     return fig
+
+
+def anytime_intervals(sites: pd.DataFrame) -> dict[str, np.ndarray]:
+    """The anytime-valid CACE set per site as up to two segments (``a_*``, ``b_*``; NaN = none).
+
+    ``interval`` -> one segment; ``two_rays`` -> (-inf, low] and [high, inf); ``real_line`` ->
+    (-inf, inf); ``empty`` or missing -> nothing.  Infinite ends are drawn as arrows.
+    """
+    n = len(sites)
+    out = {k: np.full(n, np.nan) for k in ("a_low", "a_high", "b_low", "b_high")}
+    if "cs_cace_set" not in sites.columns:
+        return out
+    kind = sites["cs_cace_set"].astype(object).to_numpy()
+    lo, hi = _col(sites, "cs_cace_low"), _col(sites, "cs_cace_high")
+    for i in range(n):          # one small branch per site (set shapes), no computation
+        if kind[i] == "interval":
+            out["a_low"][i], out["a_high"][i] = lo[i], hi[i]
+        elif kind[i] == "two_rays":
+            out["a_low"][i], out["a_high"][i] = -np.inf, lo[i]
+            out["b_low"][i], out["b_high"][i] = hi[i], np.inf
+        elif kind[i] == "real_line":
+            out["a_low"][i], out["a_high"][i] = -np.inf, np.inf
+    return out
 
 
 def _site_labels(sites: pd.DataFrame, est: np.ndarray, lo: np.ndarray, hi: np.ndarray,

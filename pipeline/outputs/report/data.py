@@ -57,6 +57,8 @@ class ReportData:
     quarantine_by_reason: pd.DataFrame
     other_outcomes: tuple[str, ...]
     influence: pd.DataFrame = field(default_factory=pd.DataFrame)  # site_influence, primary outcome, CACE
+    precision: pd.DataFrame = field(default_factory=pd.DataFrame)  # precision_forecasts: pooled first, then sites
+    alert_tests: str = "anytime_valid"                              # [sequential] alert_tests of the run
 
 
 def _df(con: duckdb.DuckDBPyConnection, sql: str, params: list[Any]) -> pd.DataFrame:
@@ -175,6 +177,9 @@ def load_report_data(con: duckdb.DuckDBPyConnection, run_id: str | None = None) 
     alerts = _df(con, "SELECT a.*, CAST(r.as_of AS VARCHAR) AS first_seen_as_of FROM alerts a "
                       "LEFT JOIN runs r ON r.run_id = a.first_seen_run_id WHERE a.run_id = ?", [rid])
     alerts = _sort_alerts(alerts)
+    precision = _df(con, "SELECT * FROM precision_forecasts WHERE run_id = ? AND outcome = ? "
+                         "ORDER BY scope = 'site', site_id", [rid, primary])
+    alert_tests = str((cfg.get("sequential") or {}).get("alert_tests") or "anytime_valid")
 
     # files received before the run started are the ones it could have read
     started = run.get("started_at")
@@ -188,6 +193,7 @@ def load_report_data(con: duckdb.DuckDBPyConnection, run_id: str | None = None) 
         site_estimates=sites, pooled=pooled, headline=headline, subgroup_tests=subgroup,
         trends=trends, alerts=alerts, batches=batches, quarantine_by_reason=quarantine,
         other_outcomes=tuple(o for o in outcomes if o != primary), influence=influence,
+        precision=precision, alert_tests=alert_tests,
     )
 
 

@@ -61,6 +61,8 @@ tbody tr:nth-child(even) { background: #fafafa; }
 figure { margin: 8px 0 14px; }
 figure svg { width: 100%; height: auto; display: block; }
 figcaption { font-size: .88rem; color: var(--muted); margin-top: 4px; }
+sup.fn { font-size: .72em; color: var(--muted); margin-left: 2px; }
+ol.footnotes { font-size: .84rem; color: var(--muted); margin: -4px 0 14px; padding-left: 22px; }
 section#cautions { background: var(--band); padding: 4px 18px 12px; margin-top: 34px; }
 section#cautions h2 { border-bottom-color: #bbb; }
 footer { margin-top: 30px; font-size: .8rem; color: var(--muted); }
@@ -127,7 +129,36 @@ def _alerts(d: ReportData) -> str:
                    "New alerts are listed first, then ongoing ones, then those resolved since the previous run.</p>")
     table = _table([("Rule", False), ("Site", False), ("Severity", False), ("Status", False), ("Message", False),
                     ("First seen", False)], rows, table_id="alerts-table", empty="No alerts.")
-    return f'<section id="alerts"><h2>Alerts</h2>{summary}{table}</section>'
+    return f'<section id="alerts"><h2>Alerts</h2>{summary}{_looks_note(d)}{table}</section>'
+
+
+def _looks_note(d: ReportData) -> str:
+    """One sentence on whether the alert tests allow for weekly looks."""
+    if d.alert_tests == "per_run":
+        return ('<p class="note" id="alert-validity">The tests behind the alert rules use per-run p-values '
+                "(this study's setting): each run's tests hold for that run only, so over many weekly runs a "
+                "clean site is flagged more often than the stated levels.</p>")
+    return ('<p class="note" id="alert-validity">The tests behind the alert rules (negative or declining first '
+            "stage, missing outcomes or uptake reports differing between arms, sample-ratio mismatch) stay valid "
+            "across weekly looks: a site where nothing is wrong raises a given rule in any run of the study at most "
+            "with that rule's stated level (5% by default), however many weekly runs there are.</p>")
+
+
+def _footnotes(notes: list[Any]) -> tuple[list[str], str]:
+    """Marks per row and one footnote per distinct note (so a shared note is stated once)."""
+    order: dict[str, int] = {}
+    marks = []
+    for n in notes:
+        text = "" if n is None else str(n).strip()
+        if not text:
+            marks.append("")
+            continue
+        k = order.setdefault(text, len(order) + 1)
+        marks.append(f'<sup class="fn">{k}</sup>')
+    if not order:
+        return marks, ""
+    items = "".join(f"<li>{_e(t)}</li>" for t in order)
+    return marks, f'<ol class="footnotes">{items}</ol>'
 
 
 def _forest(d: ReportData) -> str:
@@ -146,7 +177,9 @@ def _forest(d: ReportData) -> str:
     caption = ("<figcaption>Squares: site CACE with its conventional 95% interval. Open circles and dashed lines mark "
                f"sites whose first stage is weak (F below {d.weak_f:g}): the dashed line is the tF interval "
                "(Lee et al. 2022), or the Anderson-Rubin set where tF is unbounded; an arrow means the interval "
-               f"continues beyond the plotted range or is unbounded. {pooled_txt}</figcaption>")
+               f"continues beyond the plotted range or is unbounded. {pooled_txt} The thin sky-blue line above each "
+               "site is its anytime-valid set: unlike the conventional interval, it stays valid however often the "
+               "report is rerun as data arrive, so it is wider.</figcaption>")
     f = pd.to_numeric(s["first_stage_f"], errors="coerce")
     weak = (f < d.weak_f).fillna(False).to_numpy()
     rows = []
@@ -188,18 +221,21 @@ def _heterogeneity(d: ReportData) -> str:
                 "first stage to be pooled).</p>")
     else:
         overall = p[p["group"].isna() & (p["method"] != "pooled_2sls")]
-        rows = [[_e(r["quantity"]), _e(r["method"]), _int(r.get("n_sites")), _num(r.get("estimate")),
+        recs = _records(overall)
+        marks, notes = _footnotes([r.get("note") for r in recs])
+        rows = [[_e(r["quantity"]), _e(r["method"]) + mk, _int(r.get("n_sites")), _num(r.get("estimate")),
                  _interval(r.get("ci_low"), r.get("ci_high")), _interval(r.get("pi_low"), r.get("pi_high")),
                  _num(r.get("tau2"), 3), _interval(r.get("tau2_ci_low"), r.get("tau2_ci_high")),
-                 _pct(r.get("i2")), _num(r.get("q")), _int(r.get("q_df")), _p(r.get("q_pvalue")), _e(r.get("note"))]
-                for r in _records(overall)]
+                 _pct(r.get("i2")), _num(r.get("q")), _int(r.get("q_df")), _p(r.get("q_pvalue"))]
+                for r, mk in zip(recs, marks)]
         body = ("<p>Each method combines the site estimates. τ² is the between-site variance; I² is the share of the "
                 "spread in site estimates that reflects real differences between sites rather than chance; Q is "
                 "Cochran's test of equal effects (a small p-value suggests the effect differs between sites).</p>")
         body += _table([("Quantity", False), ("Method", False), ("Sites", True), ("Estimate", True), ("95% CI", True),
                         ("Prediction interval", True), ("τ²", True), ("τ² CI", True), ("I²", True), ("Q", True),
-                        ("df", True), ("p", True), ("Note", False)], rows, table_id="pooled-table",
+                        ("df", True), ("p", True)], rows, table_id="pooled-table",
                        empty="No pooled rows for all sites.")
+        body += notes
         tsls = p[p["method"] == "pooled_2sls"]
         if tsls.empty:
             body += '<p class="empty">No pooled two-stage least squares estimate in this run.</p>'
@@ -238,6 +274,39 @@ def _heterogeneity(d: ReportData) -> str:
         body += ('<p class="note">Results for the other outcomes (' + ", ".join(_e(o) for o in d.other_outcomes)
                  + ") are in the exported tables.</p>")
     return head + body + "</section>"
+
+
+def _precision(d: ReportData, pooled_only: bool = False) -> str:
+    head = '<section id="precision"><h2>How precise are we, and when will we know?</h2>'
+    f = d.precision
+    if f is None or f.empty:
+        return head + '<p class="empty">No precision figures in this run.</p></section>'
+    more = ""
+    if pooled_only:      # many sites: the pooled row here, every site's row in the exported table
+        n_sites = int((f["scope"] == "site").sum())
+        f = f[f["scope"] == "pooled"]
+        more = (f'<p class="note">The figures of each of the {n_sites} sites are in the exported '
+                "<code>precision_forecasts</code> table.</p>")
+    recs = _records(f)
+    marks, notes = _footnotes([r.get("note") for r in recs])
+    rows = []
+    for r, mk in zip(recs, marks):
+        who = "<strong>all sites (pooled)</strong>" if r.get("scope") == "pooled" else _e(r.get("site_id"))
+        when = r.get("forecast_date")
+        rows.append([who + mk, _int(r.get("n")), _num(r.get("mde_itt")), _num(r.get("mde_cace")),
+                     _num(r.get("complier_share")), _num(r.get("accrual_per_week"), 1),
+                     f'<span class="date">{_e(as_text_date(when))}</span>' if when is not None else "n/a"])
+    target = next((r.get("target_mde") for r in recs if r.get("target_mde") is not None), None)
+    lead = ("<p>The smallest effect each site (and the pool) could reliably detect now: the minimum detectable "
+            "ITT and CACE at 80% power (in outcome units; the CACE's grows as the complier share falls). "
+            + (f"The last column is when the CACE's reaches the target of {_num(target)} at the current pace "
+               "of enrolment. " if target is not None else
+               "No target precision is configured ([planning] target_mde), so there is no forecast date. ")
+            + "These are planning figures, not results.</p>")
+    table = _table([("Site", False), ("Participants", True), ("Detectable ITT", True), ("Detectable CACE", True),
+                    ("Complier share", True), ("New per week", True), ("Target reached", True)], rows,
+                   table_id="precision-table")
+    return head + lead + table + notes + more + "</section>"
 
 
 def _trends(d: ReportData) -> str:
@@ -373,14 +442,14 @@ def report_html(d: ReportData, max_flagged: int = 30, n_influential: int = 10) -
                                     '<div class="scroll"><table id="alerts-table" data-sortable>', 1).replace(
             "</table></section>", "</table></div></section>", 1)
         body = "".join([_header(d), _how_to_read(d), many_sites.summary_section(d), alerts,
-                        many_sites.site_effects_section(d, choice), _heterogeneity(d),
+                        many_sites.site_effects_section(d, choice), _precision(d, pooled_only=True), _heterogeneity(d),
                         many_sites.trends_section(d, choice), _data_quality(d), _cautions()])
         css += many_sites.TABLE_CSS
         script = f"<script>{many_sites.TABLE_SCRIPT}</script>"
         note = "The only script is the inline one that sorts and filters the tables; "
     else:
-        body = "".join([_header(d), _how_to_read(d), _alerts(d), _forest(d), _heterogeneity(d), _trends(d),
-                        _data_quality(d), _cautions()])
+        body = "".join([_header(d), _how_to_read(d), _alerts(d), _forest(d), _precision(d), _heterogeneity(d),
+                        _trends(d), _data_quality(d), _cautions()])
         note = ""
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
