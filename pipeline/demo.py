@@ -178,7 +178,7 @@ def _simulate_stratified(rng: np.random.Generator) -> pd.DataFrame:
     """
     rows = []
     for week in range(1, N_LOTTERY_WEEKS + 1):
-        n = int(rng.poisson(40))
+        n = int(rng.poisson(80))
         p = _C31_ODDS[week]
         z = np.zeros(n, dtype=int)
         z[rng.permutation(n)[:int(round(n * p))]] = 1

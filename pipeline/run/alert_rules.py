@@ -420,15 +420,16 @@ def _stratified_sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict
         return []
     by_cluster = ctx.config.randomisation_unit == "cluster"
     col = "n_clusters" if by_cluster else "n_assigned"
-    wide = sc.pivot_table(index=["site_id", "stratum"], columns="z", values=[col, "n_assigned"], aggfunc="sum",
-                          fill_value=0)
-    declared = sc.groupby(["site_id", "stratum"])["declared_probability"].max().reindex(wide.index)
-    cells = wide.index.to_frame(index=False)
-    sites = sorted(cells.site_id.astype(str).unique())
+    sc = sc.assign(site_id=sc.site_id.astype(str), stratum=sc.stratum.astype(str), z=sc.z.astype(int))
+    index = pd.MultiIndex.from_frame(sc[["site_id", "stratum"]].drop_duplicates().sort_values(["site_id", "stratum"]))
+    declared = sc.groupby(["site_id", "stratum"])["declared_probability"].max().reindex(index)
+    cells = index.to_frame(index=False)
+    sites = sorted(cells.site_id.unique())
     pos = {s: i for i, s in enumerate(sites)}
 
     def get(c, z):
-        return wide[(c, z)].to_numpy(float) if (c, z) in wide.columns else np.zeros(len(wide))
+        arm = sc[sc.z == z].groupby(["site_id", "stratum"])[c].sum()
+        return arm.reindex(index).fillna(0).to_numpy(float)
 
     u_t, u_c = get(col, 1), get(col, 0)
     n_t, n_c = get("n_assigned", 1), get("n_assigned", 0)
