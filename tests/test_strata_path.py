@@ -244,7 +244,11 @@ def test_degenerate_strata_through_the_path_and_the_report(tmp_path, key_env):
                           "d": [1, 0, 1, 1, 0], "y": [50.0, 51, 52, 53, 54],
                           "stratum": ["lone", "lone", "tiny", "tiny", "tiny"], "p": 0.5, "cluster": "",
                           "assigned_on": START})
-    df = pd.concat([df, extra], ignore_index=True)
+    # S4: each stratum has one arm only (the site as a whole has both): no usable stratum
+    lone = pd.DataFrame({"site_id": "S4", "pid": [f"y{i}" for i in range(8)], "z": [1, 1, 1, 1, 0, 0, 0, 0],
+                         "d": [1, 1, 0, 1, 0, 0, 1, 0], "y": np.arange(8.0) + 40,
+                         "stratum": ["a"] * 4 + ["b"] * 4, "p": 0.5, "cluster": "", "assigned_on": START})
+    df = pd.concat([df, extra, lone], ignore_index=True)
     path = _load(tmp_path, key_env, df, _config())
     run = run_monitoring(path, as_of=AS_OF)
     r = _q(path, "SELECT * FROM site_estimates WHERE run_id = $r AND site_id = 'S2' AND spec = 'stratified'",
@@ -253,6 +257,13 @@ def test_degenerate_strata_through_the_path_and_the_report(tmp_path, key_env):
     assert "2 of 5 strata left out" in r.note and "5 participants not used" in r.note
     ref = _reference(df[~df.stratum.isin(["lone", "tiny"])], "S2", cov_type="robust")
     assert r.cace == pytest.approx(ref.params.iloc[-1], rel=1e-9)
+    s4 = _q(path, "SELECT * FROM site_estimates WHERE run_id = $r AND site_id = 'S4'", {"r": run.run_id}
+            ).set_index("spec")
+    r4 = s4.loc["stratified"]
+    assert r4.status == "no_usable_strata" and pd.isna(r4.cace) and not r4.included_in_pool
+    assert "2 of 2 strata left out" in r4.note and "8 participants not used" in r4.note
+    assert s4.loc["unstratified", "cace"] == pytest.approx(
+        (np.mean([43, 42, 41, 40][::-1]) - np.mean([44, 45, 46, 47])) / (0.75 - 0.25), rel=1e-9)
     from takeup.pipeline.outputs.report.html import render_report
     con = connect(path)
     try:

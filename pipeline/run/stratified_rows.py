@@ -35,6 +35,12 @@ __all__ = ["stratified_moments_for_outcome", "stratified_cluster_moments", "stra
            "stratified_profile_rows", "stratified_covariances"]
 
 _SUMS = ("n", "sum_d", "sum_y", "sum_dd", "sum_yy", "sum_dy")
+#: columns of a stratified row that are null when no stratum is usable
+_ESTIMATE_COLUMNS = ("uptake_treatment", "uptake_control", "complier_share", "complier_share_se",
+                     "complier_share_ci_low", "complier_share_ci_high", "always_taker_share", "never_taker_share",
+                     "itt", "itt_se", "itt_ci_low", "itt_ci_high", "cace", "cace_se", "cace_ci_low", "cace_ci_high",
+                     "first_stage_f", "ar_set", "ar_ci_low", "ar_ci_high", "tf_ci_low", "tf_ci_high", "tf_se",
+                     "complier_mean_treated", "complier_mean_untreated", "n_clusters", "ci_df")
 
 
 def _cells(frame: pd.DataFrame, sites: list[str]) -> tuple[pd.DataFrame, np.ndarray, tuple[str, ...]]:
@@ -144,7 +150,12 @@ def stratify_outcome_rows(rows: list[dict], table: MomentTable, stratum_moments:
             parts.append(f"stratified over {r['n_strata']} strata (weights = the strata's shares of the site's "
                          f"sample); the unstratified CACE is {base['cace']:.3f}")
         r["note"] = "; ".join(p for p in parts if p) or None
-        if r["status"] == "no_usable_strata":
+        if str(res.estimates.status[i]) == "no_usable_strata" and int(res.n_strata_dropped[i]) > 0:
+            # outcomes exist but no stratum has both arms: not a site without outcomes
+            for key in _ESTIMATE_COLUMNS:
+                r[key] = None
+            r["status"] = "no_usable_strata"
+            r["note"] = "; ".join(p for p in (str(res.estimates.note[i]), parts[1]) if p)
             r["included_in_pool"] = False
             r["pool_exclusion_reason"] = "status no_usable_strata"
     for r in rows:
