@@ -110,8 +110,8 @@ def main(argv=None) -> int:
                                "s.y"] + [f"w.{c} AS x{j + 1}" for j, c in enumerate(covs)])
             variables = ["z", "d", "y", *[f"x{j}" for j in range(1, p + 1)]]
             means = ", ".join(f"avg({v}) AS m_{v}" for v in variables)
-            centred = ", ".join(["r.site_id", "r.outcome", "r.cluster_id"] + [f"r.{v} - m.m_{v} AS {v}"
-                                                                             for v in variables])
+            centred = ", ".join(["r.site_id", "r.outcome", "r.cluster_id", "'' AS stratum"]
+                                + [f"r.{v} - m.m_{v} AS {v}" for v in variables])
             con.execute(f"""CREATE OR REPLACE TEMP TABLE _adjusted AS
                 WITH r AS (SELECT {names} FROM _sample s JOIN _wide w USING (participant_key)),
                 m AS (SELECT site_id, outcome, {means} FROM r GROUP BY ALL)

@@ -266,8 +266,10 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
         adjusted = {}
         if config.estimation.adjust_covariates and config.covariates and outcomes:
             adjusted = adjusted_moments(con, list(sites), list(outcomes), list(config.covariates),
-                                        config.randomisation_unit == "cluster", ctx.data_cutoff)
+                                        config.randomisation_unit == "cluster", ctx.data_cutoff,
+                                        within_strata=bool(strata.sites))
     finally:
+        con.execute("DROP TABLE IF EXISTS _strata")
         con.execute("DROP TABLE IF EXISTS _sample")
         con.execute("DROP TABLE IF EXISTS _participants")
     return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,

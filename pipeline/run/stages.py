@@ -83,9 +83,14 @@ def compute_adjusted_rows(inputs: RunInputs, ctx: RunContext, site_rows: list[di
     rows = []
     for outcome, moments in inputs.adjusted.items():
         est = adjusted_estimates(moments.cross, moments.scores, level=ctx.config.estimation.level)
+        strata = moments.cross.n_strata
         for j, site in enumerate(moments.sites):
             if (site, outcome) in base:
-                rows.append(adjusted_row(base[(site, outcome)], est, j, ctx.run_id))
+                row = adjusted_row(base[(site, outcome)], est, j, ctx.run_id)
+                if strata is not None and strata[j] > 1:
+                    row["note"] = "; ".join(x for x in (row["note"], f"within the site's {int(strata[j])} "
+                                                        "randomisation strata (stratum fixed effects)") if x)
+                rows.append(row)
     return rows
 
 

@@ -133,14 +133,15 @@ def stratum_covariate_cells(con: duckdb.DuckDBPyConnection, covariates: list[str
 
 def collect_strata(con: duckdb.DuckDBPyConnection, clustered: bool, covariates: list[str],
                    data_cutoff: datetime) -> StratumFrames:
-    """Every stratum aggregate of a run (after ``build_participants``); drops ``_strata`` after."""
-    try:
-        sites = build_strata(con)
-        if not sites:
-            return empty_frames()
-        return StratumFrames(sites=sites, moments=stratum_moments(con),
-                             clusters=stratum_cluster_moments(con) if clustered else None,
-                             counts=stratum_counts(con),
-                             covariate_cells=stratum_covariate_cells(con, covariates, data_cutoff))
-    finally:
-        con.execute("DROP TABLE IF EXISTS _strata")
+    """Every stratum aggregate of a run (after ``build_participants``).
+
+    Leaves ``_strata`` in place when some site has strata (the covariate-adjusted pass
+    centres within strata); the caller drops it with the run's other temp tables.
+    """
+    sites = build_strata(con)
+    if not sites:
+        return empty_frames()
+    return StratumFrames(sites=sites, moments=stratum_moments(con),
+                         clusters=stratum_cluster_moments(con) if clustered else None,
+                         counts=stratum_counts(con),
+                         covariate_cells=stratum_covariate_cells(con, covariates, data_cutoff))
