@@ -24,6 +24,7 @@ estimates (they must agree to 1e-9 relative for the CACE, 1e-6 for its SE).
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import time
 from datetime import datetime
@@ -103,34 +104,33 @@ def main(argv=None) -> int:
                 "GROUP BY participant_key")
     from takeup.pipeline.run import adjusted_sql as a_sql
     from takeup.pipeline.stats.estimators.adjusted import CrossMoments, adjusted_coefficients
-    if True:
 
-        def passes():
-            names = ", ".join(["s.site_id", "s.outcome", "'' AS cluster_id", "CAST(s.z AS DOUBLE) AS z", "s.d",
-                               "s.y"] + [f"w.{c} AS x{j + 1}" for j, c in enumerate(covs)])
-            variables = ["z", "d", "y", *[f"x{j}" for j in range(1, p + 1)]]
-            means = ", ".join(f"avg({v}) AS m_{v}" for v in variables)
-            centred = ", ".join(["r.site_id", "r.outcome", "r.cluster_id", "'' AS stratum"]
-                                + [f"r.{v} - m.m_{v} AS {v}" for v in variables])
-            con.execute(f"""CREATE OR REPLACE TEMP TABLE _adjusted AS
-                WITH r AS (SELECT {names} FROM _sample s JOIN _wide w USING (participant_key)),
-                m AS (SELECT site_id, outcome, {means} FROM r GROUP BY ALL)
-                SELECT {centred} FROM r JOIN m USING (site_id, outcome)""")
-            frame = a_sql._cross(con, p)
-            n, cross = a_sql._cross_array(frame, sites, p)
-            cm = CrossMoments(n=n, cross=cross, n_covariates=p)
-            beta, gamma, status = adjusted_coefficients(cm)
-            coef = pd.DataFrame({"site_id": sites, "outcome": "score"})
-            for i in range(p + 2):
-                coef[f"b{i}"] = beta[:, i]
-                coef[f"g{i}"] = gamma[:, i]
-            meat = a_sql._meat(con, coef, p, False)
-            est2 = adjusted_estimates(cm, a_sql._meat_arrays(meat, sites, p, False))
-            con.execute("DROP TABLE _adjusted")
-            return est2
+    def passes():
+        names = ", ".join(["s.site_id", "s.outcome", "'' AS cluster_id", "CAST(s.z AS DOUBLE) AS z", "s.d",
+                           "s.y"] + [f"w.{c} AS x{j + 1}" for j, c in enumerate(covs)])
+        variables = ["z", "d", "y", *[f"x{j}" for j in range(1, p + 1)]]
+        means = ", ".join(f"avg({v}) AS m_{v}" for v in variables)
+        centred = ", ".join(["r.site_id", "r.outcome", "r.cluster_id", "'' AS stratum"]
+                            + [f"r.{v} - m.m_{v} AS {v}" for v in variables])
+        con.execute(f"""CREATE OR REPLACE TEMP TABLE _adjusted AS
+            WITH r AS (SELECT {names} FROM _sample s JOIN _wide w USING (participant_key)),
+            m AS (SELECT site_id, outcome, {means} FROM r GROUP BY ALL)
+            SELECT {centred} FROM r JOIN m USING (site_id, outcome)""")
+        frame = a_sql._cross(con, p)
+        n, cross = a_sql._cross_array(frame, sites, p)
+        cm = CrossMoments(n=n, cross=cross, n_covariates=p)
+        beta, gamma, status = adjusted_coefficients(cm)
+        coef = pd.DataFrame({"site_id": sites, "outcome": "score"})
+        for i in range(p + 2):
+            coef[f"b{i}"] = beta[:, i]
+            coef[f"g{i}"] = gamma[:, i]
+        meat = a_sql._meat(con, coef, p, False)
+        est2 = adjusted_estimates(cm, a_sql._meat_arrays(meat, sites, p, False))
+        con.execute("DROP TABLE _adjusted")
+        return est2
 
-        t_passes, est2 = _timed(passes)
-        assert np.allclose(est2.cace, est.cace, rtol=1e-9, atol=0)
+    t_passes, est2 = _timed(passes)
+    assert np.allclose(est2.cace, est.cace, rtol=1e-9, atol=0)
 
     t_pull, frame = _timed(lambda: con.execute(
         "SELECT s.site_id, s.z, s.d, s.y, " + ", ".join(f"w.{c}" for c in covs)
@@ -160,6 +160,7 @@ def main(argv=None) -> int:
     ]
     print(f"covariate-adjusted 2SLS: {k:,} sites x {m:,} participants, {p} covariates "
           f"({k * m:,} rows; DuckDB {duckdb.__version__}, {args.memory_limit})")
+    print("load average at the end (1, 5, 15 min): " + " ".join(f"{x:.2f}" for x in os.getloadavg()))
     print(f"{'step':<56} {'seconds':>9} {'x floor':>9}")
     for name, t, r in rows:
         print(f"{name:<56} {t:>9.2f} {('' if r is None else f'{r:.1f}'):>9}")
