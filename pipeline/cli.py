@@ -94,7 +94,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("files", nargs="+", type=Path, metavar="FILE")
 
     p = sub.add_parser("demo", help="generate the demo scenario, ingest it and run the monitoring",
-                       description="Generate the invented demo (30 learning centres, 24 upload weeks), load it into "
+                       description="Generate the invented demo (31 learning centres, 24 upload weeks), load it into "
                                    "a fresh warehouse and run the monitoring on it.")
     _warehouse_arg(p)
     p.add_argument("--out", type=Path, default=Path("sample_warehouse"),

@@ -1,7 +1,7 @@
 """The demo scenario: an invented evening numeracy course offered by lottery.
 
 A regional adult-learning service offers places in an evening numeracy
-course by lottery at 30 learning centres.  Each week for 12 weeks every
+course by lottery at 31 learning centres.  Each week for 12 weeks every
 centre runs a lottery among that week's applicants (designed treatment
 share 0.5).  Uptake = attended at least one session, reported the week
 after the offer.  Outcome = numeracy score from an assessment about 12
@@ -9,7 +9,9 @@ weeks after the offer.  Centres upload one file per record kind and week;
 the whole scenario is 24 upload weeks (12 of lotteries, then the
 assessments of the last cohorts).  Everything is generated from a fixed
 seed; the planted problems are listed in ``PLANTED`` and in
-``sample_warehouse/README.md``.
+``sample_warehouse/README.md``.  One more centre (``STRATIFIED_CENTRE``) changes its
+lottery odds halfway while its later cohorts score higher: an estimation trap that
+stratifying by lottery week avoids (no alert rule is meant to fire there).
 
 All numbers here are invented.  Nothing refers to a real programme.
 """
@@ -25,7 +27,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-__all__ = ["DemoManifest", "generate_demo", "PLANTED", "DEMO_SEED", "DEMO_START", "demo_as_of", "CENTRES"]
+__all__ = ["DemoManifest", "generate_demo", "PLANTED", "DEMO_SEED", "DEMO_START", "demo_as_of", "CENTRES",
+           "STRATIFIED_CENTRE", "STRATIFIED_NOTE"]
 
 DEMO_SEED = 20260601
 DEMO_START = date(2026, 6, 1)          # Monday of lottery week 1
@@ -42,7 +45,17 @@ _NAMES = [
     "Ashby Cross", "Bellhouse", "Copperfield", "Dovecote", "Elmstead", "Foxley Green",
 ]
 _REGIONS = ["North", "South", "East", "West", "Central"]
-CENTRES: tuple[str, ...] = tuple(f"C{i:02d}" for i in range(1, 31))
+#: the centre whose weekly lotteries change odds (weekly lotteries declared as strata)
+STRATIFIED_CENTRE = "C31"
+CENTRES: tuple[str, ...] = tuple(f"C{i:02d}" for i in range(1, 31)) + (STRATIFIED_CENTRE,)
+_NAMES.append("Greystone")
+#: lottery odds of the stratified centre: 0.5 for six weeks, then 0.8 when a second classroom opens
+_C31_ODDS = {w: (0.5 if w <= 6 else 0.8) for w in range(1, 13)}
+_C31_LATER_COHORT_SHIFT = 10.0         # later cohorts score 10 points higher, programme or not
+STRATIFIED_NOTE = ("C31 runs its weekly lotteries at 50/50 for six weeks, then at 80/20 when a second classroom "
+                   "opens, and its later cohorts score about 10 points higher whatever the offer; the weekly "
+                   "lotteries are declared as strata (stratum = lottery week, assignment_probability given), so "
+                   "its stratified CACE recovers the true 6 points while the unstratified one is far off")
 
 #: centre -> (rule the later monitoring should raise, what was planted)
 PLANTED: dict[str, tuple[str, str]] = {
@@ -117,6 +130,8 @@ def _config_toml() -> str:
 def _simulate(rng: np.random.Generator) -> pd.DataFrame:
     rows = []
     for ci, centre in enumerate(CENTRES):
+        if centre == STRATIFIED_CENTRE:
+            continue                      # simulated on its own stream below
         base_size = 2 if centre == "C23" else int(rng.choice([22, 28, 34, 40, 48]))
         share = 0.7 if centre == "C18" else 0.5
         effect = 24.0 if centre == "C14" else TRUE_CACE + rng.normal(0, 0.8)
@@ -149,6 +164,40 @@ def _simulate(rng: np.random.Generator) -> pd.DataFrame:
     c05c = (df.site_id == "C05") & (df.z == 0)
     miss |= c05c & (rng.random(len(df)) < 0.43)
     df["outcome_missing"] = miss
+    df["measured_on"] = [a + timedelta(weeks=ASSESSMENT_WEEKS, days=int(k)) for a, k in
+                         zip(df.assigned_on, rng.integers(0, 5, len(df)))]
+    df["stratum"] = None
+    df["assignment_probability"] = np.nan
+    return pd.concat([df, _simulate_stratified(np.random.default_rng([DEMO_SEED, 31]))], ignore_index=True)
+
+
+def _simulate_stratified(rng: np.random.Generator) -> pd.DataFrame:
+    """C31: weekly lotteries whose odds rise from 0.5 to 0.8 in week 7; later cohorts score higher.
+
+    Its own random stream, so the other centres' data do not change.
+    """
+    rows = []
+    for week in range(1, N_LOTTERY_WEEKS + 1):
+        n = int(rng.poisson(80))
+        p = _C31_ODDS[week]
+        z = np.zeros(n, dtype=int)
+        z[rng.permutation(n)[:int(round(n * p))]] = 1
+        u = rng.random(n)
+        always = u < 0.08
+        complier = (u >= 0.08) & (u < 0.70)
+        d = np.where(always, 1, np.where(complier, z, 0))
+        age = np.clip(rng.normal(38, 11, n), 18, 80).round()
+        later = _C31_LATER_COHORT_SHIFT if week >= 7 else 0.0
+        baseline = np.clip(rng.normal(48, 9, n) + 4 * always - 3 * (~always & ~complier), 0, 100).round(1)
+        score = baseline + 1.8 + later + rng.normal(0, 6, n) + TRUE_CACE * d
+        offered_on = DEMO_START + timedelta(weeks=week - 1, days=int(rng.integers(0, 3)))
+        for j in range(n):
+            rows.append((STRATIFIED_CENTRE, week, offered_on, int(z[j]), int(d[j]), age[j], baseline[j], score[j],
+                         f"week-{week:02d}", p))
+    df = pd.DataFrame(rows, columns=["site_id", "week", "assigned_on", "z", "d", "age", "baseline_score", "score",
+                                     "stratum", "assignment_probability"])
+    df["participant_id"] = [f"{STRATIFIED_CENTRE}-{k:06d}" for k in rng.permutation(len(df)) + 100000]
+    df["outcome_missing"] = rng.random(len(df)) < 0.04
     df["measured_on"] = [a + timedelta(weeks=ASSESSMENT_WEEKS, days=int(k)) for a, k in
                          zip(df.assigned_on, rng.integers(0, 5, len(df)))]
     return df
@@ -208,6 +257,9 @@ def generate_demo(root: Path | str, seed: int = DEMO_SEED, replace: bool = False
                                     "arm": np.where(a.z == 1, "treatment", "control"),
                                     "assigned_on": [d.isoformat() for d in a.assigned_on],
                                     "age": a.age, "baseline_score": a.baseline_score})
+                if centre == STRATIFIED_CENTRE:
+                    out["stratum"] = a.stratum.to_numpy()
+                    out["assignment_probability"] = a.assignment_probability.to_numpy()
                 if centre == "C03" and upload == 2:
                     out = out.astype(object)
                     out.iloc[0, 2] = "treatmnt"
@@ -247,7 +299,8 @@ def generate_demo(root: Path | str, seed: int = DEMO_SEED, replace: bool = False
                 if len(out):
                     files.append(_write(out, wdir / f"{centre}_outcome.csv", parquet))
     manifest = {"seed": seed, "as_of": demo_as_of().isoformat(), "participants": int(len(df)),
-                "planted": {k: {"rule": v[0], "what": v[1]} for k, v in PLANTED.items()}}
+                "planted": {k: {"rule": v[0], "what": v[1]} for k, v in PLANTED.items()},
+                "stratified": {STRATIFIED_CENTRE: STRATIFIED_NOTE}}
     (root / "incoming" / "manifest.json").write_text(json.dumps(manifest, indent=2))
     return DemoManifest(root=root, config_path=config_path, files=tuple(files), as_of=demo_as_of(),
                         n_participants=int(len(df)))

@@ -73,7 +73,27 @@ class SiteSpec(_Cfg):
     group: Optional[str] = Field(default=None, description="Site group, such as a region (for subgroup pooling).")
     allocation: Optional[dict[str, float]] = Field(default=None, description="Designed arm shares for this site.")
 
+    strata: Optional[dict[str, float]] = Field(
+        default=None, description="Designed probability of the treatment arm per stratum of this site (0 < p < 1), "
+                                  "e.g. `strata = { \"week-01\" = 0.5, \"week-07\" = 0.8 }`; strata not listed "
+                                  "have no design (left out of the sample-ratio check).  Without it every stratum "
+                                  "has the site's allocation; a stratum's `assignment_probability` in the "
+                                  "assignment records takes precedence.")
+
     _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
+
+    @field_validator("strata")
+    @classmethod
+    def _strata(cls, v: dict[str, float] | None) -> dict[str, float] | None:
+        if v is None:
+            return None
+        for name, p in v.items():
+            if not name.strip():
+                raise ValueError("a stratum name must not be empty")
+            if not (0.0 < p < 1.0):
+                raise ValueError(f"stratum {name!r}: the designed probability of the treatment arm must lie "
+                                 f"strictly between 0 and 1")
+        return dict(v)
 
     @field_validator("site_id")
     @classmethod
@@ -344,6 +364,17 @@ class StudyConfig(_Cfg):
                 return s.allocation["treatment"]
         return self.allocation["treatment"]
 
+    def stratum_design(self, site_id: str, stratum: str) -> Optional[float]:
+        """Designed treatment probability of a site's stratum from the config (None: no design).
+
+        A site with a ``strata`` table designs only the strata it lists; without one, every
+        stratum has the site's allocation.
+        """
+        for s in self.sites:
+            if s.site_id == site_id and s.strata is not None:
+                return s.strata.get(stratum)
+        return self.treatment_share(site_id)
+
     def site_group(self, site_id: str) -> Optional[str]:
         for s in self.sites:
             if s.site_id == site_id:
@@ -351,7 +382,11 @@ class StudyConfig(_Cfg):
         return None
 
     def canonical_json(self) -> str:
-        return json.dumps(self.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+        data = self.model_dump(mode="json")
+        for site in data.get("sites", []):
+            if site.get("strata") is None:
+                site.pop("strata", None)     # keeps the hash of configurations written before strata existed
+        return json.dumps(data, sort_keys=True, separators=(",", ":"))
 
     def config_hash(self) -> str:
         return hashlib.sha256(self.canonical_json().encode()).hexdigest()

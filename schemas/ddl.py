@@ -39,6 +39,8 @@ class ColumnSpec:
     extra: dict[str, Any]
     required: bool
     max_length: int | None = None
+    gt: float | None = None          # open lower bound (pydantic ``gt``)
+    lt: float | None = None          # open upper bound (pydantic ``lt``)
 
     @property
     def marker(self) -> dict[str, Any]:
@@ -76,10 +78,12 @@ def columns_of(model: type[BaseModel]) -> list[ColumnSpec]:
         base, nullable, allowed = _unwrap(info.annotation)
         extra = info.json_schema_extra if isinstance(info.json_schema_extra, dict) else {}
         max_length = next((m.max_length for m in info.metadata if hasattr(m, "max_length")), None)
+        gt = next((m.gt for m in info.metadata if getattr(m, "gt", None) is not None), None)
+        lt = next((m.lt for m in info.metadata if getattr(m, "lt", None) is not None), None)
         out.append(ColumnSpec(
             name=name, python_type=base, sql_type=extra.get("sql_type") or sql_type_of(base), nullable=nullable,
             allowed=allowed, description=info.description or "", extra=dict(extra),
-            required=info.is_required(), max_length=max_length,
+            required=info.is_required(), max_length=max_length, gt=gt, lt=lt,
         ))
     return out
 

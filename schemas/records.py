@@ -64,7 +64,14 @@ class _AssignmentFields(_SiteField):
                               json_schema_extra={"not_future": True})
     cluster_id: Optional[str] = Field(default=None, max_length=200,
                                       description="Randomisation cluster (required when randomisation is by cluster).")
-    stratum: Optional[str] = Field(default=None, max_length=200, description="Randomisation stratum, if any.")
+    stratum: Optional[str] = Field(default=None, max_length=200,
+                                   description="Randomisation stratum, if any (a lottery run separately, such as one "
+                                               "week's draw or one group's; see the README on strata).")
+    assignment_probability: Optional[float] = Field(
+        default=None, gt=0, lt=1,
+        description="Probability of the treatment arm that the lottery used for this participant's stratum "
+                    "(0 < p < 1; optional).  Constant within a site x stratum: a value that differs from the "
+                    "one already given is quarantined as `conflicting_probability`.")
 
 
 class _UptakeFields(_SiteField):

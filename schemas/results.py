@@ -51,7 +51,7 @@ class SiteEstimateRow(_Result):
     run_id: str = Field(description="Run.")
     site_id: str = Field(description="Site.")
     outcome: str = Field(description="Outcome name.")
-    spec: str = Field(description="`unadjusted` (moment path) or `covariate_adjusted` (IV2SLS with declared covariates).")
+    spec: str = Field(description="`unadjusted` (moment path; sites without strata), `stratified` (sites with two or more randomisation strata: stratum-weighted ITT, complier share and CACE; pooled), `unstratified` (the same sites' unadjusted estimate, for comparison; not pooled) or `covariate_adjusted` (IV2SLS with declared covariates).")
     n_treatment: int = Field(description="Treatment-arm participants in the analysis sample (complete case: outcome observed and, under uptake_missing = complete_case, uptake reported).")
     n_control: int = Field(description="Control-arm participants in the analysis sample.")
     n_treatment_assigned: int = Field(description="Treatment-arm participants assigned by the cutoff.")
@@ -106,6 +106,8 @@ class SiteEstimateRow(_Result):
     cs_cace_low: F = Field(default=None, description="Its bound (interval: lower end; two_rays: end of the lower ray).")
     cs_cace_high: F = Field(default=None, description="Its bound (interval: upper end; two_rays: start of the upper ray).")
     cs_alpha: F = Field(default=None, description="Level of the sequences ([sequential] alpha).")
+    n_strata: Optional[int] = Field(default=None, description="Randomisation strata used by a `stratified` row.")
+    n_strata_dropped: Optional[int] = Field(default=None, description="Strata left out of a `stratified` row (one arm only, or fewer than two participants in an arm; the note says how many participants).")
 
 
 class ComplierProfileRow(_Result):

@@ -135,3 +135,29 @@ def test_first_stage_decline_spends_its_level_over_looks():
                 assert "level spent over looks" in out[s]["message"]
     # B's decline (first stage 0.60 -> 0.20) is found at look 1 and still at look 60
     assert raw[1] / (1 / 104) < 0.05 / 4
+
+
+def test_stratified_sample_ratio_multiplies_the_strata_factors():
+    # two sites: site 0 with strata of designs 0.2 and 0.7 that both fit; site 1 whose second
+    # stratum runs off its design.  Reference: each stratum's factor from scipy.stats.betabinom /
+    # binom (Lindon & Malek 2022), multiplied over the site's strata.
+    from takeup.pipeline.run import alert_p_values
+    from tests.test_alerts_rules import make_ctx
+
+    ctx = make_ctx(make_config(sequential=ANYTIME))
+    site = np.array([0, 0, 1, 1])
+    n_t = np.array([41, 139, 30, 160])
+    n_c = np.array([159, 61, 70, 40])
+    design = np.array([0.2, 0.7, 0.3, 0.5])
+    p, how = alert_p_values.stratified_sample_ratio_p(site, n_t, n_c, design, np.array([0.5, 0.001]), ctx)
+    c = 1.0 / rho2(0.001)
+    bf = [stats.betabinom.pmf(t, t + k, c * d, c * (1 - d)) / stats.binom.pmf(t, t + k, d)
+          for t, k, d in zip(n_t, n_c, design)]
+    # ratios of scipy pmfs are accurate to about 1e-12 relative here: 1e-9
+    assert p[0] == pytest.approx(min(1.0, 1.0 / (bf[0] * bf[1])), rel=1e-9)
+    assert p[1] == pytest.approx(min(1.0, 1.0 / (bf[2] * bf[3])), rel=1e-9)
+    assert p[0] > 0.05 and p[1] < 1e-6 and "over the strata" in how
+    # per run: the fixed-sample p-values pass through unchanged
+    fixed, how = alert_p_values.stratified_sample_ratio_p(site, n_t, n_c, design, np.array([0.5, 0.001]),
+                                                          make_ctx(make_config()))
+    assert list(fixed) == [0.5, 0.001] and how == ""

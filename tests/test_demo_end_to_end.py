@@ -14,7 +14,7 @@ import duckdb
 import numpy as np
 import pytest
 
-from takeup.pipeline.demo import CENTRES, PLANTED, demo_as_of, generate_late_files
+from takeup.pipeline.demo import CENTRES, PLANTED, STRATIFIED_CENTRE, TRUE_CACE, demo_as_of, generate_late_files
 from takeup.pipeline.ingest.many_files import ingest_paths
 from takeup.pipeline.run.stages import run_monitoring
 from tests.conftest import TEST_KEY
@@ -58,8 +58,8 @@ def _alerts(demo_runs, i):
 
 def test_every_centre_has_estimates(demo_runs):
     run = demo_runs["runs"][0]
-    se = _q(demo_runs["path"], "SELECT * FROM site_estimates WHERE run_id = $r AND spec = 'unadjusted'",
-            {"r": run.run_id})
+    se = _q(demo_runs["path"], "SELECT * FROM site_estimates WHERE run_id = $r "
+            "AND spec IN ('unadjusted', 'stratified')", {"r": run.run_id})
     assert sorted(se.site_id) == sorted(CENTRES)
     with_outcomes = se[se.site_id != "C27"]
     assert with_outcomes.cace.notna().all() and with_outcomes.first_stage_f.notna().all()
@@ -76,14 +76,14 @@ def test_every_centre_has_estimates(demo_runs):
     assert covered >= 0.9
     assert se.set_index("site_id").loc["C23", "included_in_pool"] == False  # noqa: E712  weak first stage
     prof = _q(demo_runs["path"], "SELECT * FROM complier_profile WHERE run_id = $r", {"r": run.run_id})
-    assert set(prof.covariate) == {"age", "baseline_score"} and len(prof) == 60
+    assert set(prof.covariate) == {"age", "baseline_score"} and len(prof) == 2 * len(CENTRES)
 
 
 def test_pooled_rows_equal_statsmodels_combine_effects(demo_runs):
     from statsmodels.stats.meta_analysis import combine_effects
     run = demo_runs["runs"][0]
-    se = _q(demo_runs["path"], "SELECT * FROM site_estimates WHERE run_id = $r AND spec = 'unadjusted' "
-            "AND included_in_pool ORDER BY site_id", {"r": run.run_id})
+    se = _q(demo_runs["path"], "SELECT * FROM site_estimates WHERE run_id = $r "
+            "AND spec IN ('unadjusted', 'stratified') AND included_in_pool ORDER BY site_id", {"r": run.run_id})
     pooled = _q(demo_runs["path"], "SELECT * FROM pooled_estimates WHERE run_id = $r AND quantity = 'cace' "
                 "AND group_field IS NULL", {"r": run.run_id}).set_index("method")
     y, v = se.cace.to_numpy(), se.cace_se.to_numpy() ** 2
@@ -97,8 +97,28 @@ def test_pooled_rows_equal_statsmodels_combine_effects(demo_runs):
     res = combine_effects(y, v, method_re="chi2")
     assert pooled.loc["fixed", "estimate"] == pytest.approx(res.mean_effect_fe, rel=1e-10)
     assert pooled.loc["fixed", "q"] == pytest.approx(res.q, rel=1e-10)
-    assert pooled.loc["fixed", "n_sites"] == len(se) == 28          # C23 (weak) and C27 (no outcomes) left out
+    assert pooled.loc["fixed", "n_sites"] == len(se) == 29          # C23 (weak) and C27 (no outcomes) left out
+    assert se.set_index("site_id").loc[STRATIFIED_CENTRE, "spec"] == "stratified"   # pooling uses the stratified row
     assert "C23" in pooled.loc["fixed", "note"] and "C27" in pooled.loc["fixed", "note"]
+
+
+def test_changing_lottery_odds_stratified_recovers_the_effect(demo_runs):
+    """C31 (known truth: complier effect 6 points): its lottery odds go from 0.5 to 0.8 in week 7 while
+    later cohorts score 10 points higher.  The stratified CACE's 95% interval covers 6; the
+    unstratified one's does not and is more than 3 points off (the planted bias is about 5)."""
+    run = demo_runs["runs"][0]
+    se = _q(demo_runs["path"], "SELECT * FROM site_estimates WHERE run_id = $r AND site_id = $s",
+            {"r": run.run_id, "s": STRATIFIED_CENTRE}).set_index("spec")
+    strat, unstrat = se.loc["stratified"], se.loc["unstratified"]
+    assert strat.cace_ci_low <= TRUE_CACE <= strat.cace_ci_high
+    assert not (unstrat.cace_ci_low <= TRUE_CACE <= unstrat.cace_ci_high)
+    assert abs(unstrat.cace - TRUE_CACE) > 3
+    assert strat.n_strata == 12 and strat.n_strata_dropped == 0
+    assert strat.included_in_pool and not unstrat.included_in_pool
+    assert "unstratified CACE" in strat.note
+    # per-stratum sample-ratio check against the declared odds: no alert at C31
+    a = _alerts(demo_runs, 0)
+    assert STRATIFIED_CENTRE not in set(a.site_id)
 
 
 def test_planted_outlier_stands_out(demo_runs):

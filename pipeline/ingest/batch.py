@@ -437,8 +437,41 @@ def _classify_valid(con, kind: str, plan: ParsePlan) -> None:
     """)
 
 
+def _flag_probability_conflicts(con, kind: str, plan: ParsePlan) -> None:
+    """Mark assignment rows whose ``assignment_probability`` contradicts their site x stratum's.
+
+    The probability must be constant within a site x stratum (rows without one say
+    nothing).  A new row conflicts when a stored row of its site x stratum carries
+    another value, or, with none stored, when the file itself gives more than one value
+    for that site x stratum (then every row with a value there is held back: which one
+    is right cannot be told).  Flagged rows join the conflicts (``_conflict``) with
+    ``_pconf`` set, so they are quarantined as ``conflicting_probability``.
+    """
+    con.execute("ALTER TABLE _valid ADD COLUMN _pconf BOOLEAN DEFAULT FALSE")
+    if kind != "assignment" or "assignment_probability" not in plan.value_columns:
+        return
+    con.execute("""
+        WITH st AS (
+            SELECT site_id, coalesce(stratum, '') AS s, min(assignment_probability) AS p
+            FROM assignments WHERE assignment_probability IS NOT NULL GROUP BY ALL
+        ), f AS (
+            SELECT site_id, coalesce(stratum, '') AS s, count(DISTINCT assignment_probability) AS k
+            FROM _valid WHERE assignment_probability IS NOT NULL AND NOT _conflict AND NOT _dup GROUP BY ALL
+        ), bad AS (
+            SELECT v._row FROM _valid v
+            LEFT JOIN st ON st.site_id = v.site_id AND st.s = coalesce(v.stratum, '')
+            LEFT JOIN f ON f.site_id = v.site_id AND f.s = coalesce(v.stratum, '')
+            WHERE v.assignment_probability IS NOT NULL AND NOT v._conflict AND NOT v._dup
+              AND ((st.p IS NOT NULL AND st.p <> v.assignment_probability) OR (st.p IS NULL AND f.k > 1))
+        )
+        UPDATE _valid SET _pconf = TRUE, _conflict = TRUE WHERE _row IN (SELECT _row FROM bad)
+    """)
+
+
 def _quarantine_conflicts(con, kind: str, batch_id: str, file_name: str) -> None:
-    con.execute("INSERT INTO quarantine SELECT $b, $f, _row, NULL, $reason, NULL FROM _valid WHERE _conflict",
+    con.execute("INSERT INTO quarantine SELECT $b, $f, _row, CASE WHEN _pconf THEN 'assignment_probability' END, "
+                "CASE WHEN _pconf THEN 'conflicting_probability' ELSE $reason END, "
+                "CASE WHEN _pconf THEN CAST(assignment_probability AS VARCHAR) END FROM _valid WHERE _conflict",
                 {"b": batch_id, "f": file_name, "reason": _CONFLICT_REASON[kind]})
 
 
@@ -533,6 +566,7 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
             if n_bad:
                 _quarantine_checks(con, plan, batch_id, name)
             _classify_valid(con, file_kind, plan)
+            _flag_probability_conflicts(con, file_kind, plan)
             n_dup, n_conf, n_ok, sites = con.execute(
                 "SELECT coalesce(sum(_extra), 0) + count(*) FILTER (WHERE _dup), count(*) FILTER (WHERE _conflict), "
                 "count(*) FILTER (WHERE NOT _dup AND NOT _conflict), "

@@ -20,11 +20,14 @@ Reason codes (the ``quarantine.reason`` column):
 ``future_date``        after the ingestion date
 ``not_a_number``       not a plain decimal number (``1_000``, ``1,5``, ``12 kg`` are not)
 ``not_finite``         NaN or infinite
+``out_of_range``       a number outside the field's open interval (``assignment_probability``: 0 < p < 1)
 ``control_character``  a site or participant identifier holds a control character
 ``unknown_site``       site not in the study's site registry
 ``unknown_outcome``    outcome not declared in the study configuration
 ``malformed_row``      the CSV reader could not split the line into the header's columns
 ``conflicting_*``      differs from an already stored (or same-file) record with the same key
+``conflicting_probability``  an ``assignment_probability`` that differs from the one already given (stored or
+                       in the same file) for the same site x stratum
 =====================  =====================================================
 
 Identifiers (``site_id``, ``participant_id``, ``cluster_id``, ``stratum``) are
@@ -208,6 +211,12 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
             # a value that does not parse as a number may be an identifier in the wrong column: not copied
             checks.append(Check(name, "not_a_number", f"{notnull} AND {_q(name)} IS NULL", "NULL"))
             checks.append(Check(name, "not_finite", f"NOT isfinite({_q(name)})", shown))
+            bounds = [f"{_q(name)} <= {float(spec.gt)!r}" if spec.gt is not None else "",
+                      f"{_q(name)} >= {float(spec.lt)!r}" if spec.lt is not None else ""]
+            bounds = [b for b in bounds if b]
+            if bounds:
+                checks.append(Check(name, "out_of_range",
+                                    f"isfinite({_q(name)}) AND ({' OR '.join(bounds)})", shown))
         elif spec.sql_type == "BOOLEAN":
             checks.append(Check(name, "invalid_boolean", f"{notnull} AND {_q(name)} IS NULL", shown))
         elif spec.allowed is not None:

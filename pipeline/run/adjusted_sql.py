@@ -44,7 +44,8 @@ def _names(p: int) -> list[str]:
     return ["one", "z", "d", "y", *[f"x{j}" for j in range(1, p + 1)]]
 
 
-def _build_rows(con: duckdb.DuckDBPyConnection, covariates: list[str], data_cutoff) -> None:
+def _build_rows(con: duckdb.DuckDBPyConnection, covariates: list[str], data_cutoff, within_strata: bool = False
+                ) -> None:
     p = len(covariates)
     pivot = ", ".join(f"max(value) FILTER (WHERE covariate = $cov{j}) AS x{j}" for j in range(1, p + 1))
     complete = " AND ".join(["s.in_uptake", "s.y IS NOT NULL", "isfinite(s.y)"]
@@ -53,7 +54,11 @@ def _build_rows(con: duckdb.DuckDBPyConnection, covariates: list[str], data_cuto
                      "CAST(s.d AS DOUBLE) AS d", "s.y"] + [f"c.x{j}" for j in range(1, p + 1)])
     variables = ["z", "d", "y", *[f"x{j}" for j in range(1, p + 1)]]
     means = ", ".join(f"avg({v}) AS m_{v}" for v in variables)
-    centred = ", ".join(["r.site_id", "r.outcome", "r.cluster_id"] + [f"r.{v} - m.m_{v} AS {v}" for v in variables])
+    centred = ", ".join(["r.site_id", "r.outcome", "r.cluster_id", "r.stratum"]
+                        + [f"r.{v} - m.m_{v} AS {v}" for v in variables])
+    # within strata (sites with declared strata): centre at the site x stratum means (stratum fixed effects)
+    stratum = "coalesce(t.stratum, '')" if within_strata else "''"
+    join = " LEFT JOIN _strata t USING (participant_key)" if within_strata else ""
     params = {f"cov{j}": name for j, name in enumerate(covariates, start=1)}
     params["cutoff"] = data_cutoff
     con.execute(f"""
@@ -63,11 +68,11 @@ def _build_rows(con: duckdb.DuckDBPyConnection, covariates: list[str], data_cuto
             WHERE batch_id IN (SELECT batch_id FROM batches WHERE status = 'loaded' AND received_at <= $cutoff)
             GROUP BY participant_key
         ), r AS (
-            SELECT {raw} FROM _sample s JOIN c USING (participant_key) WHERE {complete}
+            SELECT {raw}, {stratum} AS stratum FROM _sample s JOIN c USING (participant_key){join} WHERE {complete}
         ), m AS (
-            SELECT site_id, outcome, {means} FROM r GROUP BY site_id, outcome
+            SELECT site_id, outcome, stratum, {means} FROM r GROUP BY site_id, outcome, stratum
         )
-        SELECT {centred} FROM r JOIN m USING (site_id, outcome)
+        SELECT {centred} FROM r JOIN m USING (site_id, outcome, stratum)
     """, params)
 
 
@@ -76,7 +81,8 @@ def _cross(con: duckdb.DuckDBPyConnection, p: int) -> pd.DataFrame:
     expr = lambda a, b: "count(*)" if a == b == "one" else (  # noqa: E731
         f"sum({b})" if a == "one" else f"sum({a} * {b})")
     cols = [f"{expr(a, b)} AS c_{i}_{j}" for i, a in enumerate(names) for j, b in enumerate(names) if i <= j]
-    return con.execute(f"SELECT site_id, outcome, {', '.join(cols)} FROM _adjusted GROUP BY site_id, outcome").df()
+    return con.execute(f"SELECT site_id, outcome, count(DISTINCT stratum) AS n_strata, {', '.join(cols)} "
+                       "FROM _adjusted GROUP BY site_id, outcome").df()
 
 
 def _cross_array(frame: pd.DataFrame, sites: list[str], p: int) -> tuple[np.ndarray, np.ndarray]:
@@ -144,10 +150,14 @@ def _meat_arrays(frame: pd.DataFrame, sites: list[str], p: int, clustered: bool)
 
 
 def adjusted_moments(con: duckdb.DuckDBPyConnection, sites: list[str], outcomes: list[str], covariates: list[str],
-                     clustered: bool, data_cutoff) -> dict[str, AdjustedMoments]:
-    """Both passes for every outcome (needs the run's ``_sample`` temp table)."""
+                     clustered: bool, data_cutoff, within_strata: bool = False) -> dict[str, AdjustedMoments]:
+    """Both passes for every outcome (needs the run's ``_sample`` temp table).
+
+    ``within_strata``: centre within site x stratum (needs ``_strata`` from
+    :mod:`takeup.pipeline.run.strata_sql`); sites without strata are one stratum.
+    """
     p = len(covariates)
-    _build_rows(con, covariates, data_cutoff)
+    _build_rows(con, covariates, data_cutoff, within_strata)
     try:
         cross_frame = _cross(con, p)
         out: dict[str, AdjustedMoments] = {}
@@ -156,7 +166,9 @@ def adjusted_moments(con: duckdb.DuckDBPyConnection, sites: list[str], outcomes:
         for outcome in outcomes:
             sub = cross_frame[cross_frame.outcome == outcome]
             n, cross = _cross_array(sub, sites, p)
-            cm = CrossMoments(n=n, cross=cross, n_covariates=p)
+            n_strata = (sub.set_index("site_id")["n_strata"].reindex(sites).fillna(1).to_numpy(dtype=float)
+                        if within_strata else None)
+            cm = CrossMoments(n=n, cross=cross, n_covariates=p, n_strata=n_strata)
             beta, gamma, status = adjusted_coefficients(cm)
             crosses[outcome] = cm
             ok = status == "ok"

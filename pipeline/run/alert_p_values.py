@@ -43,7 +43,8 @@ import numpy as np
 from takeup.pipeline.run.inputs import RunContext
 from takeup.pipeline.stats import anytime_tests
 
-__all__ = ["anytime_valid", "negative_first_stage_p", "two_sided_p", "sample_ratio_p", "decline_p",
+__all__ = ["anytime_valid", "negative_first_stage_p", "two_sided_p", "sample_ratio_p",
+           "stratified_sample_ratio_p", "decline_p",
            "decline_variance"]
 
 _MIXTURE = "anytime-valid over weekly runs"
@@ -89,6 +90,24 @@ def sample_ratio_p(units_t, units_c, share, p_fixed, ctx: RunContext) -> tuple[n
     c = anytime_tests.ratio_concentration(ctx.config.alerts.srm_p_value, ctx.config.sequential.horizon_participants)
     p = anytime_tests.ratio_mixture_p_value(units_t, units_c, share, c)
     return p, _MIXTURE + ": beta-binomial mixture"
+
+
+def stratified_sample_ratio_p(site_index, units_t, units_c, design, p_fixed, ctx: RunContext
+                              ) -> tuple[np.ndarray, str]:
+    """P-values of "every stratum's arm counts follow its design" for sites with strata.
+
+    Anytime-valid: the product over a site's strata of the beta-binomial mixture factors
+    (a martingale under the design, see
+    :func:`~takeup.pipeline.stats.anytime_tests.ratio_mixture_log_bayes_factor`).
+    """
+    p_fixed = np.asarray(p_fixed, dtype=float)
+    if not anytime_valid(ctx):
+        return p_fixed, ""
+    c = anytime_tests.ratio_concentration(ctx.config.alerts.srm_p_value, ctx.config.sequential.horizon_participants)
+    log_bf = anytime_tests.ratio_mixture_log_bayes_factor(units_t, units_c, design, c)
+    total = np.bincount(np.asarray(site_index, dtype=np.int64), weights=log_bf, minlength=len(p_fixed))
+    p = np.minimum(1.0, np.exp(-total))
+    return np.where(np.isfinite(p_fixed), p, np.nan), _MIXTURE + ": beta-binomial mixture over the strata"
 
 
 def decline_variance(ctx: RunContext) -> str:

@@ -17,7 +17,10 @@ rule                            severity  raised when
 ``sample_ratio_mismatch``       critical  Pearson chi-square of the arm counts (everyone
                                           assigned; clusters under cluster randomisation)
                                           against the site's designed allocation has
-                                          p < ``srm_p_value``
+                                          p < ``srm_p_value``; for a site with strata, the
+                                          statistics of its strata (each against its own
+                                          designed probability) are summed, df = strata
+                                          with a design
 ``weak_first_stage``            warning   first-stage F < ``weak_first_stage_f``
 ``first_stage_decline``         warning   first stage of the latest ``first_stage_decline_periods``
                                           closed cohorts below that of earlier cohorts (one-sided
@@ -120,10 +123,11 @@ from scipy import stats
 
 from takeup.pipeline.stats import significance
 from takeup.pipeline.run import alert_p_values
+from takeup.pipeline.stats.stratified_ratio import stratified_sample_ratio_test
 from takeup.pipeline.stats.meta_analysis.influence import outlier_test
 from takeup.pipeline.run.pooled_rows import INFLUENCE_METHOD
 from takeup.pipeline.run.inputs import RunContext, RunInputs
-from takeup.pipeline.run.site_rows import clean
+from takeup.pipeline.run.site_rows import clean, is_primary
 from takeup.pipeline.run.trend_rows import DriftResult
 
 __all__ = ["RULES", "SEVERITY", "BH_RULES", "alert_key", "compute_alerts", "evaluate_rules", "apply_lifecycle",
@@ -188,7 +192,7 @@ def _primary(inputs: RunInputs, ctx: RunContext) -> str | None:
 
 
 def _primary_rows(site_rows: list[dict], outcome: str | None) -> pd.DataFrame:
-    rows = [r for r in site_rows if r.get("outcome") == outcome and r.get("spec", "unadjusted") == "unadjusted"]
+    rows = [r for r in site_rows if r.get("outcome") == outcome and is_primary(r)]
     cols = ["site_id", "first_stage_f", "complier_share", "complier_share_se", "n_treatment", "n_control",
             "n_treatment_assigned", "n_control_assigned", "due_treatment", "due_control",
             "missing_outcome_treatment", "missing_outcome_control", "cace", "cace_se", "included_in_pool",
@@ -427,11 +431,56 @@ def _clusters_by_site(inputs: RunInputs) -> pd.DataFrame:
                          "g_c": g[0].to_numpy(float) if 0 in g.columns else np.zeros(len(g))})
 
 
-def _sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
-    arms = _assigned_by_site(inputs)
-    arms = arms[(arms.n_t + arms.n_c) > 0].reset_index(drop=True)
-    if arms.empty:
+def _stratified_sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+    """Sample-ratio check of the sites with strata: Pearson chi-square summed over the strata with a design."""
+    sc = inputs.stratum_counts
+    if sc is None or sc.empty:
         return []
+    by_cluster = ctx.config.randomisation_unit == "cluster"
+    col = "n_clusters" if by_cluster else "n_assigned"
+    sc = sc.assign(site_id=sc.site_id.astype(str), stratum=sc.stratum.astype(str), z=sc.z.astype(int))
+    index = pd.MultiIndex.from_frame(sc[["site_id", "stratum"]].drop_duplicates().sort_values(["site_id", "stratum"]))
+    declared = sc.groupby(["site_id", "stratum"])["declared_probability"].max().reindex(index)
+    cells = index.to_frame(index=False)
+    sites = sorted(cells.site_id.unique())
+    pos = {s: i for i, s in enumerate(sites)}
+
+    def get(c, z):
+        arm = sc[sc.z == z].groupby(["site_id", "stratum"])[c].sum()
+        return arm.reindex(index).fillna(0).to_numpy(float)
+
+    u_t, u_c = get(col, 1), get(col, 0)
+    n_t, n_c = get("n_assigned", 1), get("n_assigned", 0)
+    design = np.array([float(d) if pd.notna(d) else
+                       (ctx.config.stratum_design(s, st) if ctx.config.stratum_design(s, st) is not None else np.nan)
+                       for s, st, d in zip(cells.site_id, cells.stratum, declared.to_numpy())], dtype=float)
+    si = cells.site_id.map(pos).to_numpy(dtype=np.int64)
+    res = stratified_sample_ratio_test(si, u_t, u_c, design, len(sites))
+    p_site, anytime = alert_p_values.stratified_sample_ratio_p(si, u_t, u_c, design, res.p_value, ctx)
+    unit = "clusters" if by_cluster else "participants"
+    out = []
+    for i in np.flatnonzero(np.isfinite(p_site) & (p_site < a.srm_p_value)):
+        j = int(res.top_cell[i])
+        st = str(cells.stratum.iloc[j]) or "(no stratum)"
+        tot_t, tot_c = int(u_t[si == i].sum()), int(u_c[si == i].sum())
+        out.append(_alert(
+            "sample_ratio_mismatch", sites[i], None, tot_t / max(tot_t + tot_c, 1), a.srm_p_value, p_site[i],
+            f"Arm counts per randomisation stratum do not fit the design: chi-square {res.chi2[i]:.1f} summed over "
+            f"{int(res.df[i])} strata, {f'p ({anytime})' if anytime else 'p'} = {_p(p_site[i])} < {a.srm_p_value:g}.  Stratum {st} contributes most "
+            f"({res.contribution[j]:.1f}): {int(u_t[j])} treated and {int(u_c[j])} control {unit} "
+            f"({_pct(u_t[j] / max(u_t[j] + u_c[j], 1))} treated) against the designed {_pct(design[j])}"
+            + (f" ({int(n_t[j])} and {int(n_c[j])} participants)" if by_cluster else "")
+            + ". Check the randomisation and how assignments are recorded."))
+    return out
+
+
+def _sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
+    """Sample-ratio check: per stratum for sites with strata, else the site's arm counts against its allocation."""
+    out = _stratified_sample_ratio(inputs, ctx, a)
+    arms = _assigned_by_site(inputs)
+    arms = arms[((arms.n_t + arms.n_c) > 0) & ~arms.site_id.isin(set(inputs.stratified_sites))].reset_index(drop=True)
+    if arms.empty:
+        return out
     share = np.array([ctx.config.treatment_share(s) for s in arms.site_id], dtype=float)
     by_cluster = ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None
     if by_cluster:
@@ -444,7 +493,6 @@ def _sample_ratio(inputs: RunInputs, ctx: RunContext, a) -> list[dict]:
     res = _srm_test(units_t, units_c, share)
     res["p"], anytime = alert_p_values.sample_ratio_p(units_t, units_c, share, res["p"], ctx)
     hit = np.isfinite(res["p"]) & (res["p"] < a.srm_p_value)
-    out = []
     for i in np.flatnonzero(hit):
         n_t, n_c = int(arms.at[i, "n_t"]), int(arms.at[i, "n_c"])
         u_t, u_c = int(units_t[i]), int(units_c[i])

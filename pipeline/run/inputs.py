@@ -18,6 +18,7 @@ import duckdb
 import pandas as pd
 
 from takeup.pipeline.run.adjusted_sql import AdjustedMoments, adjusted_moments
+from takeup.pipeline.run.strata_sql import collect_strata
 from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, cluster_moments, covariate_cells,
                                             outcome_names, site_outcome_moments)
 from takeup.schemas.config import StudyConfig
@@ -100,6 +101,19 @@ class RunInputs:
     cluster_cohort_counts: pd.DataFrame | None = None  # site x arm x cohort period x cluster (cluster randomisation)
     previous_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)         # previous run's site sequences
     previous_pooled_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)  # and its pooled ones
+    # randomisation strata (only sites with two or more strata; see run/strata_sql.py)
+    stratum_moments: pd.DataFrame = field(default_factory=pd.DataFrame)   # site x outcome x stratum x arm
+    stratum_clusters: pd.DataFrame | None = None   # site x outcome x stratum x cluster x arm (cluster randomisation)
+    stratum_counts: pd.DataFrame = field(default_factory=pd.DataFrame)    # site x stratum x arm: assigned, clusters,
+                                                                          # declared probability
+    stratum_covariate_cells: pd.DataFrame = field(default_factory=pd.DataFrame)  # site x stratum x covariate x (z, d)
+
+    @property
+    def stratified_sites(self) -> tuple[str, ...]:
+        """Sites with two or more strata (their primary rows are stratified)."""
+        if self.stratum_counts is None or self.stratum_counts.empty:
+            return ()
+        return tuple(sorted(self.stratum_counts.site_id.astype(str).unique()))
 
 
 def input_fingerprint(con: duckdb.DuckDBPyConnection, data_cutoff: datetime) -> tuple[str, int]:
@@ -247,11 +261,15 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
         activity = _site_activity(con, ctx)
         prev_id, prev = _previous_alerts(con, ctx)
         prev_site_seq, prev_pooled_seq = _previous_sequences(con, prev_id)
+        strata = collect_strata(con, config.randomisation_unit == "cluster", list(config.covariates),
+                                ctx.data_cutoff)
         adjusted = {}
         if config.estimation.adjust_covariates and config.covariates and outcomes:
             adjusted = adjusted_moments(con, list(sites), list(outcomes), list(config.covariates),
-                                        config.randomisation_unit == "cluster", ctx.data_cutoff)
+                                        config.randomisation_unit == "cluster", ctx.data_cutoff,
+                                        within_strata=bool(strata.sites))
     finally:
+        con.execute("DROP TABLE IF EXISTS _strata")
         con.execute("DROP TABLE IF EXISTS _sample")
         con.execute("DROP TABLE IF EXISTS _participants")
     return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,
@@ -259,5 +277,7 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
                      site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,
                      n_batches=n_batches, input_fingerprint=fingerprint, adjusted=adjusted,
                      previous_sequences=prev_site_seq, previous_pooled_sequences=prev_pooled_seq,
-                     cluster_cohort_counts=cluster_cohort)
+                     cluster_cohort_counts=cluster_cohort,
+                     stratum_moments=strata.moments, stratum_clusters=strata.clusters,
+                     stratum_counts=strata.counts, stratum_covariate_cells=strata.covariate_cells)
 

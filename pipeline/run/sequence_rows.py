@@ -27,7 +27,8 @@ import pandas as pd
 from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.run.pooled_rows import _values
 from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
-from takeup.pipeline.run.site_rows import clean
+from takeup.pipeline.run.site_rows import clean, is_primary
+from takeup.pipeline.run.stratified_rows import stratified_covariances
 from takeup.pipeline.stats.estimators.wald import wald_estimates
 from takeup.pipeline.stats.precision import precision_forecast
 from takeup.pipeline.stats.sequential import (anytime_ar_set, confidence_sequence, intersect_sets,
@@ -87,7 +88,7 @@ def _site_sequences(rows: list[dict], inputs: RunInputs, ctx: RunContext) -> lis
     cov = np.full(n, np.nan)
     sites = list(inputs.sites)
     for outcome in inputs.outcomes:
-        idx = [i for i, r in enumerate(rows) if r["outcome"] == outcome and r["spec"] == "unadjusted"]
+        idx = [i for i, r in enumerate(rows) if r["outcome"] == outcome and is_primary(r)]
         if not idx:
             continue
         table = moments_for_outcome(inputs.moments, outcome, sites)
@@ -99,6 +100,10 @@ def _site_sequences(rows: list[dict], inputs: RunInputs, ctx: RunContext) -> lis
             k = pos.get(rows[i]["site_id"])
             if k is not None and rows[i].get("itt") is not None:
                 cov[i] = est.cov_itt_fs[k]
+        strat = stratified_covariances(inputs, outcome, ctx.config)
+        for i in idx:
+            if rows[i]["spec"] == "stratified":
+                cov[i] = strat.get(rows[i]["site_id"], np.nan) if rows[i].get("itt") is not None else np.nan
     ar = anytime_ar_set(itt, pi, itt_se**2, pi_se**2, cov, info, alpha, horizon)
     ar_kind = np.array([str(k) if np.isfinite(cov[i]) and str(k) in _AR_KINDS else "undefined"
                         for i, k in enumerate(ar.kind)], dtype=object)
@@ -144,7 +149,7 @@ def _pooled_sequences(pooled: list[dict], site_rows: list[dict], inputs: RunInpu
     seq = ctx.config.sequential
     cluster = ctx.config.randomisation_unit == "cluster"
     info_by_site = {(r["site_id"], r["outcome"]): _information(r, cluster)
-                    for r in site_rows if r["spec"] == "unadjusted"}
+                    for r in site_rows if is_primary(r)}
     targets = [i for i, r in enumerate(pooled) if r["method"] == "fixed" and r.get("group_field") is None]
     if not targets:
         return list(pooled)
@@ -154,7 +159,7 @@ def _pooled_sequences(pooled: list[dict], site_rows: list[dict], inputs: RunInpu
     horizon = np.full(len(targets), np.nan)
     for j, i in enumerate(targets):
         r = pooled[i]
-        rows = [s for s in site_rows if s["outcome"] == r["outcome"] and s["spec"] == "unadjusted"]
+        rows = [s for s in site_rows if s["outcome"] == r["outcome"] and is_primary(s)]
         sites, _, _, _ = _values(rows, r["quantity"])
         vals = [info_by_site.get((s, r["outcome"]), math.nan) for s in sites]
         vals = [v for v in vals if np.isfinite(v)]
@@ -203,7 +208,7 @@ def precision_rows(inputs: RunInputs, ctx: RunContext, site_rows: list[dict], po
         return []
     plan = ctx.config.planning
     alpha = 1.0 - ctx.config.estimation.level
-    rows = [r for r in site_rows if r["outcome"] == outcome and r["spec"] == "unadjusted"]
+    rows = [r for r in site_rows if r["outcome"] == outcome and is_primary(r)]
     accrual = accrual_per_week(inputs, ctx)
 
     def f(x):

@@ -27,7 +27,8 @@ from takeup.pipeline.stats.estimators.weak_iv import anderson_rubin_set, tf_inte
 from takeup.pipeline.run.sample_sql import MomentTable
 from takeup.schemas.config import StudyConfig
 
-__all__ = ["estimate_sites", "complier_profile_rows", "adjusted_row", "clean"]
+__all__ = ["estimate_sites", "rows_from_estimates", "complier_profile_rows", "adjusted_row", "clean",
+           "PRIMARY_SPECS", "is_primary"]
 
 _AR_KINDS = {"interval", "two_rays", "real_line", "empty"}
 
@@ -58,6 +59,16 @@ def _join_notes(*notes) -> str | None:
     return "; ".join(parts) if parts else None
 
 
+#: specs of the row that stands for a site x outcome (pooling, alerts, sequences, report): one per
+#: site x outcome, ``stratified`` for sites with two or more strata, ``unadjusted`` otherwise
+PRIMARY_SPECS: tuple[str, ...] = ("unadjusted", "stratified")
+
+
+def is_primary(row: dict) -> bool:
+    """Whether a ``site_estimates`` row is its site x outcome's primary row."""
+    return row.get("spec", "unadjusted") in PRIMARY_SPECS
+
+
 def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
                    clusters: ClusterMoments | None = None) -> list[dict]:
     """Rows of ``site_estimates`` (spec ``unadjusted``) for one outcome."""
@@ -65,10 +76,21 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
     min_cl = config.estimation.min_clusters_per_arm
     est = wald_estimates(table.moments, clusters=clusters, level=level, min_clusters_per_arm=min_cl)
     fs_only = wald_estimates(table.first_stage_moments, level=level)
+    cm = complier_outcome_means(table.moments)
+    return rows_from_estimates(table, config, run_id, est, fs_only, cm, clusters is not None, "unadjusted")
+
+
+def rows_from_estimates(table: MomentTable, config: StudyConfig, run_id: str, est, fs_only, cm, clustered: bool,
+                        spec: str) -> list[dict]:
+    """``site_estimates`` rows of one outcome from Wald-type estimates (unstratified or stratified).
+
+    ``est`` and ``fs_only`` are :class:`WaldEstimates` of the analysis sample and of the
+    first-stage sample (sites without outcomes), ``cm`` the complier outcome means.
+    """
+    level = config.estimation.level
     ar = anderson_rubin_set(est.itt, est.complier_share, est.itt_se ** 2, est.complier_share_se ** 2,
                             est.cov_itt_fs, level=level, df=est.ci_df)
     tf = tf_interval(est.cace, est.cace_se, est.first_stage_f)
-    cm = complier_outcome_means(table.moments)
     missing = table.n_assigned - table.n_uptake_observed
     bounds = complier_share_bounds(table.sum_d_assigned[:, 1], missing[:, 1], table.n_assigned[:, 1],
                                    table.sum_d_assigned[:, 0], missing[:, 0], table.n_assigned[:, 0])
@@ -100,7 +122,7 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
         ar_ok = (not no_outcomes) and ar_kind in _AR_KINDS
         f_stat = clean(src.first_stage_f[i])
         row = {
-            "run_id": run_id, "site_id": site, "outcome": table.outcome, "spec": "unadjusted",
+            "run_id": run_id, "site_id": site, "outcome": table.outcome, "spec": spec,
             "n_treatment": n_t, "n_control": n_c,
             "n_treatment_assigned": nat_t, "n_control_assigned": nat_c,
             "due_treatment": due_t, "due_control": due_c,
@@ -129,9 +151,9 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
             "tf_ci_high": None if no_outcomes else clean(tf.high[i]),
             "tf_se": None if no_outcomes else clean(tf.se[i]),
             "se_type": src.se_type,
-            "n_clusters": (int(src.n_clusters[i]) if clusters is not None and np.isfinite(src.n_clusters[i])
+            "n_clusters": (int(src.n_clusters[i]) if clustered and np.isfinite(src.n_clusters[i])
                            else None),
-            "ci_df": (int(src.ci_df[i]) if clusters is not None and np.isfinite(src.ci_df[i]) else None),
+            "ci_df": (int(src.ci_df[i]) if clustered and np.isfinite(src.ci_df[i]) else None),
             "complier_mean_treated": None if no_outcomes else clean(cm.complier_treated[i]),
             "complier_mean_untreated": None if no_outcomes else clean(cm.complier_control[i]),
             "status": status,
@@ -143,7 +165,7 @@ def estimate_sites(table: MomentTable, config: StudyConfig, run_id: str,
             extra_notes.append(str(ar.note[i]))
         if not no_outcomes and row["cace"] is not None and row["tf_ci_low"] is None and tf.note[i]:
             extra_notes.append(str(tf.note[i]))
-        if clusters is not None and row["tf_ci_low"] is not None:
+        if clustered and row["tf_ci_low"] is not None:
             extra_notes.append(f"the tF interval uses the critical values of Lee et al. (2022), derived for many "
                                f"clusters; with {row['n_clusters']} clusters prefer the Anderson-Rubin set, which "
                                f"uses t({row['ci_df']})")

@@ -39,7 +39,8 @@ from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, colle
 from takeup.pipeline.run.pooled_rows import pool_outcome
 from takeup.pipeline.run.sequence_rows import add_sequences, precision_rows
 from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
-from takeup.pipeline.run.site_rows import adjusted_row, complier_profile_rows, estimate_sites
+from takeup.pipeline.run.site_rows import adjusted_row, complier_profile_rows, estimate_sites, is_primary
+from takeup.pipeline.run.stratified_rows import stratified_profile_rows, stratify_outcome_rows
 from takeup.pipeline.run.trend_rows import compute_trends
 from takeup.pipeline.run.writer import RunResults, RunSummary, finish_run, start_run, summarise, write_results
 from takeup.pipeline.stats.estimators.adjusted import adjusted_estimates
@@ -52,27 +53,44 @@ __all__ = ["Stage", "STAGES", "StageCaller", "InProcess", "compute_all", "timed"
 
 # ----------------------------------------------------------------------------- stage functions
 def compute_site_rows(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], list[dict]]:
-    """``site_estimates`` (unadjusted) and ``complier_profile`` rows for every outcome."""
+    """``site_estimates`` and ``complier_profile`` rows for every outcome.
+
+    Sites without strata get an ``unadjusted`` row; sites with two or more strata a
+    ``stratified`` row (their primary row) and an ``unstratified`` one for comparison.
+    """
     sites = list(inputs.sites)
+    strat_sites = inputs.stratified_sites
     rows: list[dict] = []
     for outcome in inputs.outcomes:
         table = moments_for_outcome(inputs.moments, outcome, sites)
         clusters = (cluster_moments_for_outcome(inputs.clusters, outcome, sites)
                     if inputs.clusters is not None else None)
-        rows.extend(estimate_sites(table, ctx.config, ctx.run_id, clusters=clusters))
+        out = estimate_sites(table, ctx.config, ctx.run_id, clusters=clusters)
+        if strat_sites:
+            out = stratify_outcome_rows(out, table, inputs.stratum_moments, inputs.stratum_clusters, ctx.config,
+                                        ctx.run_id, strat_sites)
+        rows.extend(out)
     profile = complier_profile_rows(inputs.covariate_cells, inputs.sites, list(ctx.config.covariates), ctx.run_id)
+    if strat_sites:
+        profile = stratified_profile_rows(profile, inputs.stratum_covariate_cells, inputs.sites,
+                                          list(ctx.config.covariates), strat_sites, ctx.run_id)
     return rows, profile
 
 
 def compute_adjusted_rows(inputs: RunInputs, ctx: RunContext, site_rows: list[dict]) -> list[dict]:
     """``covariate_adjusted`` rows for every site x outcome, vectorised over sites (from moments)."""
-    base = {(r["site_id"], r["outcome"]): r for r in site_rows if r["spec"] == "unadjusted"}
+    base = {(r["site_id"], r["outcome"]): r for r in site_rows if is_primary(r)}
     rows = []
     for outcome, moments in inputs.adjusted.items():
         est = adjusted_estimates(moments.cross, moments.scores, level=ctx.config.estimation.level)
+        strata = moments.cross.n_strata
         for j, site in enumerate(moments.sites):
             if (site, outcome) in base:
-                rows.append(adjusted_row(base[(site, outcome)], est, j, ctx.run_id))
+                row = adjusted_row(base[(site, outcome)], est, j, ctx.run_id)
+                if strata is not None and strata[j] > 1:
+                    row["note"] = "; ".join(x for x in (row["note"], f"within the site's {int(strata[j])} "
+                                                        "randomisation strata (stratum fixed effects)") if x)
+                rows.append(row)
     return rows
 
 
@@ -83,7 +101,7 @@ def compute_pooled(inputs: RunInputs, ctx: RunContext, site_rows: list[dict]
     pooled, subgroup, influence = [], [], []
     sites = list(inputs.sites)
     for outcome in inputs.outcomes:
-        rows = [r for r in site_rows if r["outcome"] == outcome and r["spec"] == "unadjusted"]
+        rows = [r for r in site_rows if r["outcome"] == outcome and is_primary(r)]
         table = moments_for_outcome(inputs.moments, outcome, sites)
         p, s, i = pool_outcome(ctx.run_id, outcome, rows, table.moments, sites, ctx.config, groups)
         pooled += p

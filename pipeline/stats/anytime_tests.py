@@ -198,13 +198,34 @@ def ratio_mixture_p_value(n_treated, n_control, share, concentration: float) -> 
     nc = np.asarray(n_control, dtype=float)
     p0 = np.asarray(share, dtype=float)
     ok = np.isfinite(nt) & np.isfinite(nc) & (nt >= 0) & (nc >= 0) & np.isfinite(p0) & (p0 > 0) & (p0 < 1)
+    log_bf = ratio_mixture_log_bayes_factor(nt, nc, p0, concentration)
+    p = np.minimum(1.0, np.exp(-log_bf))
+    return _ro(np.where(ok, p, np.nan))
+
+
+def ratio_mixture_log_bayes_factor(n_treated, n_control, share, concentration: float) -> np.ndarray:
+    r"""Log of the beta-binomial mixture Bayes factor behind :func:`ratio_mixture_p_value`.
+
+    Returns 0 (a factor of 1: no evidence) where the counts or the share are invalid, so that
+    log factors of independent strata can be added: the product of the strata's factors is
+    again a nonnegative martingale under the design (each new unit moves one stratum's factor
+    only, with conditional mean one), which makes ``min(1, exp(-sum))`` anytime-valid for the
+    site as a whole.
+
+    References
+    ----------
+    .. [1] Lindon and Malek (2022); Ville (1939), see the module references.
+    """
+    nt = np.asarray(n_treated, dtype=float)
+    nc = np.asarray(n_control, dtype=float)
+    p0 = np.asarray(share, dtype=float)
+    ok = np.isfinite(nt) & np.isfinite(nc) & (nt >= 0) & (nc >= 0) & np.isfinite(p0) & (p0 > 0) & (p0 < 1)
     p0s = np.where(ok, p0, 0.5)
     a, b = concentration * p0s, concentration * (1.0 - p0s)
     nts, ncs = np.where(ok, nt, 0.0), np.where(ok, nc, 0.0)
     log_bf = (special.betaln(a + nts, b + ncs) - special.betaln(a, b)
               - nts * np.log(p0s) - ncs * np.log1p(-p0s))
-    p = np.minimum(1.0, np.exp(-log_bf))
-    return _ro(np.where(ok, p, np.nan))
+    return _ro(np.where(ok, log_bf, 0.0))
 
 
 def look_spending(look, planned_looks: int) -> np.ndarray:

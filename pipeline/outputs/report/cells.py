@@ -10,7 +10,7 @@ import pandas as pd
 
 from takeup.pipeline.outputs.report.charts import format_number
 
-__all__ = ["esc", "num", "pval", "pct", "integer", "interval", "table", "records"]
+__all__ = ["esc", "num", "pval", "pct", "integer", "interval", "table", "records", "stratified_remark"]
 
 
 def esc(value: Any) -> str:
@@ -76,3 +76,16 @@ def table(headers: Sequence[tuple[str, bool]], rows: Iterable[Sequence[str]], ta
 
 def records(df: pd.DataFrame) -> list[dict[str, Any]]:
     return [] if df is None or df.empty else df.astype(object).where(df.notna(), None).to_dict("records")
+
+
+def stratified_remark(rec: dict[str, Any]) -> str:
+    """For a stratified row: 'stratified' and how far the unstratified CACE is (escaped HTML; '' otherwise)."""
+    if rec.get("spec") != "stratified":
+        return ""
+    n = rec.get("n_strata")
+    strata = f" over {integer(n)} strata" if n is not None and not pd.isna(n) else ""
+    u, c = rec.get("unstratified_cace"), rec.get("cace")
+    if u is None or c is None or pd.isna(u) or pd.isna(c):
+        return f'<br><span class="strat">stratified{strata}; unstratified not available</span>'
+    return (f'<br><span class="strat">stratified{strata}; unstratified {num(u)} '
+            f"({'+' if u - c >= 0 else '&minus;'}{num(abs(u - c))})</span>")

@@ -47,7 +47,8 @@ class ReportData:
     study_id: str
     primary_outcome: str | None
     weak_f: float
-    site_estimates: pd.DataFrame      # primary outcome, spec 'unadjusted'
+    site_estimates: pd.DataFrame      # primary outcome, primary rows (spec 'unadjusted' or 'stratified'),
+                                      # with unstratified_cace beside the stratified ones
     pooled: pd.DataFrame              # primary outcome, all quantities / methods / groups
     headline: dict[str, Any] | None   # pooled CACE row shown as the diamond
     subgroup_tests: pd.DataFrame
@@ -150,8 +151,11 @@ def load_report_data(con: duckdb.DuckDBPyConnection, run_id: str | None = None) 
         [rid]).fetchall()]
     primary = _primary_outcome(cfg, outcomes)
 
-    sites = _df(con, "SELECT * FROM site_estimates WHERE run_id = ? AND outcome = ? AND spec = 'unadjusted' "
-                     "ORDER BY site_id", [rid, primary])
+    # the primary row of each site (stratified for sites with strata) and, beside it, the unstratified CACE
+    sites = _df(con, "SELECT s.*, u.cace AS unstratified_cace FROM site_estimates s LEFT JOIN site_estimates u "
+                     "ON u.run_id = s.run_id AND u.site_id = s.site_id AND u.outcome = s.outcome "
+                     "AND u.spec = 'unstratified' WHERE s.run_id = ? AND s.outcome = ? "
+                     "AND s.spec IN ('unadjusted', 'stratified') ORDER BY s.site_id", [rid, primary])
     pooled = _df(con, "SELECT * FROM pooled_estimates WHERE run_id = ? AND outcome = ?", [rid, primary])
     if not pooled.empty:
         rank = pooled["method"].map(_METHOD_ORDER).fillna(

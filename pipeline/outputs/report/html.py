@@ -19,6 +19,7 @@ import pandas as pd
 
 from takeup.pipeline.outputs.report.cells import esc as _e, integer as _int, interval as _interval, num as _num
 from takeup.pipeline.outputs.report.cells import pct as _pct, pval as _p, records as _records, table as _table
+from takeup.pipeline.outputs.report.cells import stratified_remark
 from takeup.pipeline.outputs.report import many_sites
 from takeup.pipeline.outputs.report.charts import figure_svg, forest_figure, uptake_figure
 from takeup.pipeline.errors import ReportError
@@ -190,7 +191,8 @@ def _forest(d: ReportData) -> str:
             f'{_int(rec.get("n_treatment_assigned"))} / {_int(rec.get("n_control_assigned"))}',
             f'{_pct(rec.get("uptake_treatment"))} / {_pct(rec.get("uptake_control"))}',
             _num(rec.get("complier_share")), _num(rec.get("first_stage_f"), 1), _num(rec.get("itt")),
-            _num(rec.get("cace")), _interval(rec.get("cace_ci_low"), rec.get("cace_ci_high")),
+            _num(rec.get("cace")) + stratified_remark(rec),
+            _interval(rec.get("cace_ci_low"), rec.get("cace_ci_high")),
             "yes" if rec.get("included_in_pool") else "no",
             _site_note(rec),
         ])

@@ -24,7 +24,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from takeup.pipeline.outputs.report.cells import esc, integer, interval, num, pct, records, table
+from takeup.pipeline.outputs.report.cells import (esc, integer, interval, num, pct, records, stratified_remark,
+                                                  table)
 from takeup.pipeline.outputs.report.charts import figure_svg, forest_figure, funnel_figure, uptake_figure
 from takeup.pipeline.outputs.report.data import ACTIVE_STATUSES, ReportData, is_uptake_rule
 
@@ -288,7 +289,7 @@ def _details(d: ReportData, alerts: dict[str, list[tuple[str, str, str]]]) -> st
         facts = [
             ("Complier share", f'{num(rec.get("complier_share"))} (SE {num(rec.get("complier_share_se"))})'),
             ("ITT", f'{num(rec.get("itt"))} (SE {num(rec.get("itt_se"))})'),
-            ("CACE", f'{num(rec.get("cace"))} (SE {num(rec.get("cace_se"))})'),
+            ("CACE", f'{num(rec.get("cace"))} (SE {num(rec.get("cace_se"))}){stratified_remark(rec)}'),
             ("tF interval", interval(rec.get("tf_ci_low"), rec.get("tf_ci_high"))),
             ("Anderson-Rubin", f'{esc(rec.get("ar_set")) or "n/a"} '
                                f'{interval(rec.get("ar_ci_low"), rec.get("ar_ci_high"))}'),

@@ -24,6 +24,11 @@ Everything comes from sums that DuckDB aggregates per site
   :math:`\sum_g (\sum_{i \in g} \hat u_i q_i)(\sum_{i \in g} \hat u_i q_i)'`
   (one-way cluster-robust), and the same for the first-stage residuals.
 
+With declared randomisation strata the variables are centred within site x stratum
+instead (stratum fixed effects, "within strata"): by Frisch-Waugh-Lovell the slope and
+its sandwich are those of the fit with one intercept per stratum, and the small-sample
+factor counts them (:math:`k = p + 1 + S`).
+
 Variances are the sandwich :math:`c\,(Q'W)^{-1} M (W'Q)^{-1}` (first stage:
 :math:`c\,(Q'Q)^{-1} M_v (Q'Q)^{-1}`) with the small-sample factor
 :math:`c = n/(n-k)` (HC1) or :math:`c = \frac{G}{G-1}\frac{n-1}{n-k}` (CR1):
@@ -87,6 +92,9 @@ class CrossMoments:
     n: np.ndarray            # (S,)
     cross: np.ndarray        # (S, m, m), m = p + 4
     n_covariates: int
+    #: randomisation strata absorbed per site (variables centred within site x stratum: stratum
+    #: fixed effects, k = p + 1 + strata parameters); None = one (centred within site)
+    n_strata: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -134,7 +142,8 @@ def adjusted_coefficients(cm: CrossMoments) -> tuple[np.ndarray, np.ndarray, np.
     status[_ranks(qw) < k] = "zero_first_stage"
     status[_ranks(qq) < k] = "singular_design"
     status[~(z_var > 1e-12)] = "constant_instrument"
-    status[n <= k] = "too_few_rows"
+    absorbed = 0.0 if cm.n_strata is None else np.maximum(np.asarray(cm.n_strata, float), 1.0) - 1.0
+    status[n <= k + absorbed] = "too_few_rows"
     ok = status == "ok"
     beta = _solve(qw, qy, ok)
     gamma = _solve(qq, qd, ok)
@@ -190,7 +199,8 @@ def adjusted_estimates(cm: CrossMoments, sm: ScoreMoments, level: float = 0.95) 
     if not (0.0 < level < 1.0):
         raise ValueError(f"level must be strictly between 0 and 1, got {level!r}")
     p = cm.n_covariates
-    k = p + 2
+    strata = np.ones(cm.n.shape[0]) if cm.n_strata is None else np.maximum(np.asarray(cm.n_strata, float), 1.0)
+    k = p + 1 + strata            # slope, covariates and one intercept per stratum (p + 2 without strata)
     qi, wi = q_index(p), w_index(p)
     beta, gamma, status = adjusted_coefficients(cm)
     n = cm.n.astype(float)
@@ -226,12 +236,12 @@ def adjusted_estimates(cm: CrossMoments, sm: ScoreMoments, level: float = 0.95) 
         lo, hi = cace - tq * se, cace + tq * se
     notes = np.full(n.shape[0], "", dtype=object)
     for i in np.flatnonzero(~ok):
-        notes[i] = _NOTES[str(status[i])].format(n=int(n[i]), k=k)
+        notes[i] = _NOTES[str(status[i])].format(n=int(n[i]), k=int(k[i]))
     for i in np.flatnonzero(ok & ~(fs_se > 0)):
         notes[i] = "first-stage standard error is zero: F undefined"
     if clustered:
         for i in np.flatnonzero(ok & (g < k)):
-            notes[i] = "; ".join(x for x in (notes[i], f"{int(g[i])} clusters for {k} parameters: "
+            notes[i] = "; ".join(x for x in (notes[i], f"{int(g[i])} clusters for {int(k[i])} parameters: "
                                                        "cluster-robust covariance is rank deficient") if x)
     notes.setflags(write=False)
     status = np.asarray(status, dtype=object)
