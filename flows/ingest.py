@@ -4,8 +4,8 @@ DuckDB allows one writer, so loading is serial (each file one atomic batch);
 the per-file validation — reading the file, checking its header and running
 every row check against an empty in-memory warehouse — is independent per
 file and is mapped across the task runner's workers (threads, or a Dask
-cluster).  The writer retries with backoff when the warehouse is locked by
-another process.
+cluster).  The writer waits, with backoff, while another process holds the
+warehouse's lock (:func:`takeup.pipeline.warehouse.connect_waiting`).
 """
 
 from __future__ import annotations
@@ -29,7 +29,7 @@ def validate_task(path: str, config_json: str | None, kind: str | None) -> dict:
     return asdict(prevalidate_file(Path(path), config_json, kind))
 
 
-@task(name="load-files", cache_policy=NO_CACHE, retries=4, retry_delay_seconds=[1, 2, 4, 8])
+@task(name="load-files", cache_policy=NO_CACHE)
 def load_task(warehouse: str, paths: list[str], kind: str | None) -> list[dict]:
     return [asdict(r) for r in ingest_paths(warehouse, [Path(p) for p in paths], kind=kind)]
 

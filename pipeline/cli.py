@@ -1,7 +1,8 @@
 """Command line: ``takeup <command> ...`` (argument parsing and printing only).
 
 Exit codes: 0 success; 1 data problems reported (rejected files, quarantined
-rows, a run that finished with errors); 2 usage or configuration error;
+rows, a run that finished with errors), or the warehouse stayed locked by another
+process for the whole ``--wait``; 2 usage or configuration error;
 3 internal error (a bug: one line, the traceback only with ``--log-level
 debug``); 4 the machine refused (out of memory, disk full, permission denied).
 Every failure is one line on stderr.
@@ -66,9 +67,29 @@ def _mode_arg(p: argparse.ArgumentParser) -> None:
                    help="permission bits of the written file(s) (default 600: owner only)")
 
 
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of seconds: {text!r}") from None
+    if not 0 <= value < 1e7:
+        raise argparse.ArgumentTypeError(f"seconds must be 0 or more (and below 10,000,000): {text!r}")
+    return value
+
+
+#: the environment variable through which --wait reaches every connection (and the flows' subprocesses);
+#: the same name as takeup.pipeline.warehouse.LOCK_WAIT_ENV (not imported here: start-up time)
+_LOCK_WAIT_ENV = "TAKEUP_LOCK_WAIT"
+#: seconds to wait for the warehouse lock: on the command line, and under serve (a scheduled run waits longer)
+WAIT_DEFAULT, WAIT_DEFAULT_SERVE = 60.0, 900.0
+
+
 def _warehouse_arg(p: argparse.ArgumentParser) -> None:
     p.add_argument("--warehouse", type=Path, default=None, metavar="PATH",
                    help="DuckDB warehouse file (default: $TAKEUP_WAREHOUSE, else ./takeup.duckdb)")
+    p.add_argument("--wait", type=_seconds, default=None, metavar="SECONDS",
+                   help="how long to wait while another process holds the warehouse (default 60; 900 under "
+                        "serve); then exit 1 saying who holds it")
     p.add_argument("--log-level", default="warning", choices=["debug", "info", "warning", "error"],
                    help="logging verbosity on stderr (default: warning; debug adds tracebacks of internal errors)")
     p.add_argument("--quiet", action="store_true", help="print only errors and the final summary")
@@ -516,16 +537,35 @@ def _one_line(exc: BaseException) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    from takeup.pipeline.errors import (ExportError, InfrastructureError, IngestError, OptionError, ReportError,
-                                        ReproduceError, RunnerError, WarehouseError, infrastructure_problem)
-    from takeup.pipeline.pseudonym import PseudonymKeyError
-    from takeup.schemas.config import ConfigError
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.log_level)
     where = f"takeup {args.command}"
+    wait = getattr(args, "wait", None)
+    if wait is None:
+        wait = WAIT_DEFAULT_SERVE if args.command == "serve" else WAIT_DEFAULT
+    saved_wait = os.environ.get(_LOCK_WAIT_ENV)
+    os.environ[_LOCK_WAIT_ENV] = f"{wait:g}"
+    try:
+        return _dispatch(args, where)
+    finally:
+        if saved_wait is None:
+            os.environ.pop(_LOCK_WAIT_ENV, None)
+        else:
+            os.environ[_LOCK_WAIT_ENV] = saved_wait
+
+
+def _dispatch(args, where: str) -> int:
+    from takeup.pipeline.errors import (ExportError, InfrastructureError, IngestError, OptionError, ReportError,
+                                        ReproduceError, RunnerError, WarehouseBusyError, WarehouseError,
+                                        infrastructure_problem)
+    from takeup.pipeline.pseudonym import PseudonymKeyError
+    from takeup.schemas.config import ConfigError
     try:
         return COMMANDS[args.command](args)
+    except WarehouseBusyError as exc:
+        print(f"{where}: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_DATA
     except (ConfigError, UsageError, OptionError, RunnerError, PseudonymKeyError) as exc:
         print(f"{where}: {_one_line(exc)}", file=sys.stderr)
         return EXIT_USAGE

@@ -4,12 +4,16 @@ from __future__ import annotations
 
 import errno
 
-__all__ = ["WarehouseError", "IngestError", "ExportError", "ReportError", "ReproduceError", "RunnerError",
+__all__ = ["WarehouseError", "WarehouseBusyError", "IngestError", "ExportError", "ReportError", "ReproduceError", "RunnerError",
            "OptionError", "InfrastructureError", "infrastructure_problem"]
 
 
 class WarehouseError(RuntimeError):
     """A warehouse that cannot be used as asked (missing, wrong key, locked)."""
+
+
+class WarehouseBusyError(WarehouseError):
+    """The warehouse stayed locked by another process for the whole wait (exit code 1, not a usage error)."""
 
 
 class IngestError(ValueError):
