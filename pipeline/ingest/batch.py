@@ -60,7 +60,7 @@ class BatchReport:
     """What happened to one file."""
 
     file: str
-    status: str                 # loaded | duplicate_batch | rejected
+    status: str                 # loaded | duplicate_batch | rejected (| deferred: a drop-folder file still being written)
     batch_id: str | None = None
     kind: str | None = None
     rows_read: int = 0

@@ -24,9 +24,12 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from takeup.pipeline.ingest.batch import BatchReport
+from typing import Sequence
 
-__all__ = ["DropFolders", "DEFAULT_SETTLE_SECONDS", "unsettled", "move_after_commit"]
+from takeup.pipeline.ingest.batch import BatchReport
+from takeup.pipeline.ingest.many_files import expand_paths, ingest_paths
+
+__all__ = ["DropFolders", "DEFAULT_SETTLE_SECONDS", "unsettled", "move_after_commit", "ingest_drop_folder"]
 
 #: a file whose size or modification time changed within this many seconds is still being written
 DEFAULT_SETTLE_SECONDS = 10.0
@@ -59,7 +62,7 @@ def unsettled(path: Path, settle: float, now: float | None = None) -> str | None
     now = time.time() if now is None else now
     age = now - first.st_mtime
     if age < settle:
-        return f"changed {max(age, 0):.0f} s ago (less than {settle:g} s)"
+        return f"changed {max(age, 0):.0f} s ago, less than {settle:g} s"
     time.sleep(0.05)
     try:
         second = path.stat()
@@ -129,3 +132,24 @@ def move_after_commit(path: Path, report: BatchReport, folders: DropFolders) -> 
         tmp.write_text(f"{report.message}\nbatch {report.batch_id}\n", encoding="utf-8")
         os.replace(tmp, reason)
     return moved
+
+
+def ingest_drop_folder(warehouse: Path | str, paths: Sequence[Path | str], folders: DropFolders,
+                       kind: str | None = None, progress: bool = False, **source) -> list[BatchReport]:
+    """One pass over a drop folder: ingest the settled files, move each after its commit.
+
+    Files still being written come back as reports with status ``deferred`` (not a batch,
+    nothing recorded) and stay where they are.  ``source``: ``delimiter`` / ``encoding``.
+    """
+    files = expand_paths([Path(p) for p in paths], exclude=folders.excluded)
+    ready, reports = [], []
+    for f in files:
+        why = unsettled(f, folders.settle)
+        if why is None:
+            ready.append(f)
+        else:
+            reports.append(BatchReport(file=str(f), status="deferred",
+                                       message=f"still being written ({why}); left for the next pass"))
+    loaded = ingest_paths(warehouse, ready, kind=kind, progress=progress,
+                          after_commit=lambda path, report: move_after_commit(path, report, folders), **source)
+    return loaded + reports
