@@ -71,6 +71,8 @@ def infrastructure_problem(exc: BaseException) -> str | None:
         return _ERRNO_TEXT[exc.errno]
     name = type(exc).__name__
     text = str(exc).lower()
+    if "no space left on device" in text:          # also a failed COMMIT (TransactionException) writing the WAL
+        return "disk full"
     if name == "OutOfMemoryException" or "out of memory" in text or "failed to allocate" in text:
         return "out of memory"
     if name in ("IOException", "IOError", "PermissionException") or "io error" in text:
