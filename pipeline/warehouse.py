@@ -70,6 +70,7 @@ def _create_tables(con: duckdb.DuckDBPyConnection) -> None:
 
 #: tables whose value CHECKs a later version widened (``runs.status`` gained ``abandoned``)
 _WIDENED_CHECKS = ("runs",)
+_TARGET_CHECKS: dict[str, list[str]] = {}     # DDL -> its CHECK expressions as DuckDB prints them
 
 
 def _check_texts(con: duckdb.DuckDBPyConnection, table: str) -> list[str]:
@@ -84,10 +85,11 @@ def _widen_checks(con: duckdb.DuckDBPyConnection, table: str, model, columns: li
     Runs inside the writer's lock, in one transaction; the rows are copied column by name.
     """
     wanted = create_table_sql(table, model)
-    with duckdb.connect(":memory:") as scratch:
-        scratch.execute(wanted)
-        target = _check_texts(scratch, table)
-    if _check_texts(con, table) == target:
+    if wanted not in _TARGET_CHECKS:
+        with duckdb.connect(":memory:") as scratch:
+            scratch.execute(wanted)
+            _TARGET_CHECKS[wanted] = _check_texts(scratch, table)
+    if _check_texts(con, table) == _TARGET_CHECKS[wanted]:
         return
     from takeup.schemas.ddl import columns_of
     keep = [c.name for c in columns_of(model) if c.name in columns]

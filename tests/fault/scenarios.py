@@ -46,13 +46,15 @@ def clean_study_module():
     return mod
 
 
-def assignment_csv(path: Path, n_rows: int, seed: int, sites: int = 20, prefix: str = "p") -> Path:
+def assignment_csv(path: Path, n_rows: int, seed: int, sites: list[str] | None = None, prefix: str = "p",
+                   month: str = "2026-01") -> Path:
     """An assignment file of ``n_rows`` distinct participants (written with numpy, no row loop)."""
     rng = np.random.default_rng(seed)
-    site = np.char.add("S", (np.arange(n_rows) % sites).astype(str))
+    names = np.array(sites or [f"S{i}" for i in range(20)])
+    site = names[np.arange(n_rows) % len(names)]
     pid = np.char.add(f"{prefix}{seed}-", np.arange(n_rows).astype(str))
     arm = np.where(rng.random(n_rows) < 0.5, "treatment", "control")
-    day = np.char.add("2026-01-", np.char.zfill((1 + rng.integers(0, 28, n_rows)).astype(str), 2))
+    day = np.char.add(month + "-", np.char.zfill((1 + rng.integers(0, 28, n_rows)).astype(str), 2))
     lines = np.char.add(np.char.add(np.char.add(np.char.add(np.char.add(np.char.add(site, ","), pid), ","), arm),
                                     ","), day)
     path.write_text(A_HEADER + "\n" + "\n".join(lines.tolist()) + "\n")
@@ -305,7 +307,9 @@ def disk_full(work: Path, size_mb: int = 24, n_rows: int = 400_000) -> dict:
 def concurrency(work: Path, n_writers: int = 8, rows_each: int = 2_000) -> dict:
     """``n_writers`` ingests of different files at once, plus a run, plus a reader holding another DuckDB file."""
     base, as_of = run_fixture(work, 10)
-    files = [assignment_csv(work / f"site_{i}.csv", rows_each, seed=100 + i, prefix=f"c{i}-") for i in range(n_writers)]
+    sites = clean_study_module().site_names(10)
+    files = [assignment_csv(work / f"site_{i}.csv", rows_each, seed=100 + i, sites=sites, prefix=f"c{i}-",
+                            month="2025-03") for i in range(n_writers)]
     snapshot = work / "snapshot.duckdb"
     duckdb.connect(str(snapshot)).close()
     ready = work / "reader_ready"
@@ -338,3 +342,96 @@ def concurrency(work: Path, n_writers: int = 8, rows_each: int = 2_000) -> dict:
             "rows_lost": max(0, expected - got), "rows_duplicated": max(0, got - expected),
             "waited": sum("waiting up to" in err for _, err in results), "broken": broken(after),
             "runs_ok": after["runs"].get("ok", 0), "tracebacks": sum("Traceback" in err for _, err in results)}
+
+
+# ----------------------------------------------------------------------------- injection
+EVIL = "x'); DROP TABLE batches; --\"; DELETE FROM runs; --"
+
+
+def _tables(warehouse: Path) -> dict:
+    con = duckdb.connect(str(warehouse), read_only=True)
+    try:
+        names = [r[0] for r in con.execute("SELECT table_name FROM duckdb_tables() WHERE schema_name = 'main' "
+                                           "ORDER BY 1").fetchall()]
+        return {t: con.execute(f'SELECT count(*) FROM "{t}"').fetchone()[0] for t in names}
+    finally:
+        con.close()
+
+
+def injection(work: Path) -> dict:
+    """SQL metacharacters and quotes in file names, headers, site ids, outcome names, study_id; `..` targets."""
+    cfg = work / "study.toml"
+    study = "s'; DROP TABLE runs; --"
+    outcome = 'o\'"; DROP TABLE assignments; --'
+    cfg.write_text(f'study_id = {json_str(study)}\n[[outcomes]]\nname = {json_str(outcome)}\n')
+    wh = work / "w.duckdb"
+    refused = subprocess.run(cli("init", "--warehouse", str(wh), "--config", str(cfg)), env=env(),
+                             capture_output=True, text=True)          # outcome names are identifiers: refused
+    cfg.write_text(f'study_id = {json_str(study)}\n[[outcomes]]\nname = "score"\n')
+    subprocess.run(cli("init", "--warehouse", str(wh), "--config", str(cfg)), env=env(), check=True,
+                   capture_output=True)
+    sites = [f"S{i}{EVIL}" if i % 2 else f"S{i}\"'`;" for i in range(6)]
+    incoming = work / "in"
+    incoming.mkdir()
+    a = incoming / f"a{EVIL.replace('/', '_')}.csv"
+    rows = [f'"{s.replace(chr(34), chr(34) * 2)}",p{i}-{j},{"treatment" if j % 2 else "control"},2026-01-05'
+            for i, s in enumerate(sites) for j in range(8)]
+    a.write_text(A_HEADER + "\n" + "\n".join(rows) + "\n")
+    u = incoming / "u'\";--.csv"
+    u.write_text("site_id,participant_id,observed_on,took_up\n" + "\n".join(
+        f'"{s.replace(chr(34), chr(34) * 2)}",p{i}-{j},2026-01-20,{j % 2}' for i, s in enumerate(sites)
+        for j in range(8)) + "\n")
+    o = incoming / "o.csv"
+    o.write_text("site_id,participant_id,outcome,measured_on,value\n" + "\n".join(
+        f'"{s.replace(chr(34), chr(34) * 2)}",p{i}-{j},"{outcome.replace(chr(34), chr(34) * 2) if j == 0 else "score"}"'
+        f',2026-02-01,{j}' for i, s in enumerate(sites) for j in range(8)) + "\n")
+    h = incoming / "h.csv"
+    h.write_text(A_HEADER + ',"' + EVIL.replace('"', '""') + '"\nS1,p1,control,2026-01-05,x\n')
+    before = _tables(wh)
+    ing = subprocess.run(cli("ingest", "--warehouse", str(wh), str(incoming)), env=env(), capture_output=True,
+                         text=True)
+    mid = _tables(wh)
+    run = subprocess.run(cli("run", "--warehouse", str(wh), "--as-of", "2026-02-28", "--quiet"), env=env(),
+                         capture_output=True, text=True)
+    after = _tables(wh)
+    con = duckdb.connect(str(wh), read_only=True)
+    stored_sites = sorted(r[0] for r in con.execute("SELECT DISTINCT site_id FROM assignments").fetchall())
+    stored_outcomes = [r[0] for r in con.execute("SELECT DISTINCT outcome FROM outcome_measurements").fetchall()]
+    unknown_outcomes = con.execute("SELECT count(*) FROM quarantine WHERE reason = 'unknown_outcome'").fetchone()[0]
+    study_ids = [r[0] for r in con.execute("SELECT DISTINCT study_id FROM runs r, "
+                                           "(SELECT json_extract_string(config_json, '$.study_id') AS study_id "
+                                           "FROM study_configs) c").fetchall()]
+    est_sites = sorted(r[0] for r in con.execute("SELECT DISTINCT site_id FROM site_estimates").fetchall())
+    con.close()
+    # export / report targets: a run id with `..` is refused, files land only inside --out
+    outside = work / "evil"
+    exp_dir = work / "export"
+    bad_run = subprocess.run(cli("export", "--warehouse", str(wh), "--out", str(exp_dir), "--run", "../../evil"),
+                             env=env(), capture_output=True, text=True)
+    good = subprocess.run(cli("export", "--warehouse", str(wh), "--out", str(exp_dir / ".." / "export")), env=env(),
+                          capture_output=True, text=True)
+    rep = subprocess.run(cli("report", "--warehouse", str(wh), "--out", str(work / "r" / ".." / "report.html"),
+                             "--run", "../../evil"), env=env(), capture_output=True, text=True)
+    written = sorted(p.relative_to(work).as_posix() for p in work.rglob("*")
+                     if p.is_file() and not p.is_relative_to(incoming) and not p.name.startswith("w.duckdb")
+                     and p.name != "study.toml")
+    return {
+        "tables_unchanged": set(before) == set(mid) == set(after),
+        "ingest_exit": ing.returncode, "run_exit": run.returncode,
+        "rows": {t: after[t] for t in ("assignments", "uptake_events", "outcome_measurements", "batches")},
+        "sites_literal": stored_sites == sorted(sites) and est_sites == sorted(sites),
+        "outcome_config_refused": refused.returncode == 2 and "outcomes[0].name" in refused.stderr,
+        "outcome_rows_quarantined": stored_outcomes == ["score"] and unknown_outcomes == len(sites),
+        "study_id_literal": study_ids == [study],
+        "header_file_rejected": "h.csv" in ing.stderr and "column 5 of the header" in ing.stderr,
+        "bad_run_exit": bad_run.returncode, "report_bad_run_exit": rep.returncode,
+        "export_exit": good.returncode, "outside_written": not outside.exists() and all(
+            w.startswith("export/") for w in written),
+        "tracebacks": sum("Traceback" in x.stderr for x in (ing, run, bad_run, good, rep)),
+    }
+
+
+def json_str(text: str) -> str:
+    """A TOML basic string (JSON's escaping is valid TOML for these characters)."""
+    import json
+    return json.dumps(text)
