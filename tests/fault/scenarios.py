@@ -217,7 +217,7 @@ def kill_run(work: Path, n_sites: int, n_kills: int, seed: int = 2) -> dict:
     full = _timed(cli("run", "--warehouse", str(trial), "--as-of", as_of, "--quiet"))
     # start-up and opening: a run refused at once (an --as-of before the data); kills fall after 80 % of it
     start = _timed_any(cli("run", "--warehouse", str(trial), "--as-of", "1901-01-01", "--quiet"))
-    out = {"kills": 0, "killed_mid_run": 0, "killed_before_start": 0, "finished_before_kill": 0, "opens": 0,
+    out = {"kills": 0, "killed_mid_run": 0, "killed_after_commit": 0, "killed_before_start": 0, "finished_before_kill": 0, "opens": 0,
            "broken": 0, "abandoned_marked": 0, "left_running": 0, "resumed_ok": 0, "seconds_full": full}
     for _ in range(n_kills):
         copy_warehouse(base, trial)
@@ -231,8 +231,7 @@ def kill_run(work: Path, n_sites: int, n_kills: int, seed: int = 2) -> dict:
         if running:
             out["killed_mid_run"] += 1
         elif c["runs"].get("ok", 0):
-            out["finished_before_kill"] += 1 if not killed else 0
-            out["killed_mid_run"] += 1 if killed else 0      # killed after the commit, while closing
+            out["finished_before_kill" if not killed else "killed_after_commit"] += 1   # after: while closing
         else:
             out["killed_before_start"] += 1
         rc = subprocess.run(cli("run", "--warehouse", str(trial), "--as-of", as_of, "--quiet"), env=env(),
