@@ -101,7 +101,7 @@ def test_spreadsheets_are_told_to_export_as_csv(warehouse, tmp_path, name, membe
 def test_header_only_binary_and_huge_files_get_their_reason(warehouse, tmp_path):
     f = write_csv(tmp_path / "h.csv", A_HEADER)
     r = _one(warehouse, f)
-    assert r.status == "rejected" and "header line but no records" in r.message
+    assert r.status == "rejected" and "names its columns but holds no records" in r.message
     f = tmp_path / "b.csv"
     f.write_bytes(bytes(range(256)) * 40)
     r = _one(warehouse, f)

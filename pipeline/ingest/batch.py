@@ -568,7 +568,7 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
             file_kind = kind or detect_kind(list(columns), name)
             covariates = _check_columns(file_kind, columns, config, name)
             if rows_read == 0:
-                raise IngestError(f"{name}: the file has a header line but no records; nothing to load")
+                raise IngestError(f"{name}: the file names its columns but holds no records; nothing to load")
             also = ("cluster_id",) if file_kind == "assignment" and config.randomisation_unit == "cluster" else ()
             plan = build_parse_plan(file_kind, columns, covariates, key.sql_expr, also_required=also)
             _parse(con, plan, key, config, today)
