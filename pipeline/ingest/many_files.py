@@ -14,7 +14,7 @@ __all__ = ["ingest_paths", "expand_paths"]
 
 
 #: files a directory is searched for: what is read, and what is refused with advice rather than ignored
-SEARCHED_SUFFIXES = (".csv", ".csv.gz", ".tsv", ".txt", ".parquet", ".xlsx", ".xls", ".ods")
+SEARCHED_SUFFIXES = (".csv", ".csv.gz", ".tsv", ".parquet", ".xlsx", ".xls", ".ods")
 
 
 def expand_paths(paths: Iterable[Path], exclude: Iterable[Path] = ()) -> list[Path]:
