@@ -6,8 +6,8 @@ ingest flow as a subflow) and the monitoring run starts only after the load
 finished, so the two never race for DuckDB's single writer and a run never
 misses files that arrived for it.  The incoming folder is a drop folder: each file
 moves to ``processed/`` or ``rejected/`` once its batch is committed, and files still
-being written wait for the next run (:mod:`takeup.pipeline.ingest.drop_folder`).  The deployment ``<study>-ingest`` is also
-registered, for loading on demand (``prefect deployment run``); its copy of
+being written wait for the next run (:mod:`takeup.pipeline.ingest.drop_folder`).
+The deployment ``<study>-ingest`` is also registered, for loading on demand (``prefect deployment run``); its copy of
 the schedule is registered *inactive* so it never fires at the same instant.
 
 Against the local ephemeral API by default; set ``PREFECT_API_URL`` to an
