@@ -101,3 +101,13 @@ def test_without_drop_folders_nothing_moves(warehouse, tmp_path):
     f = write_csv(tmp_path / "a.csv", A_HEADER, "S1,p1,control,2026-01-05")
     assert ingest_paths(warehouse, [f])[0].status == "loaded" and f.exists()
     assert main(["ingest", "--warehouse", str(warehouse), "--settle", "5", str(f)]) == 2
+
+
+def test_serve_passes_the_drop_folders_to_both_deployments(tmp_path):
+    from takeup.flows.serve import build_deployments
+    from takeup.schemas.config import parse_config
+    cfg = parse_config({"study_id": "s"})
+    drop = {"processed": str(tmp_path / "in" / "processed"), "rejected": str(tmp_path / "in" / "rejected"),
+            "settle": 30.0}
+    deps = build_deployments(tmp_path / "w.duckdb", cfg, incoming=tmp_path / "in", drop=drop)
+    assert [d.parameters["drop"] for d in deps] == [drop, drop]
