@@ -5,8 +5,11 @@ The flow walks the same stage list as the in-process runner
 task.  Every stage is one vectorised pass over all sites (the covariate-adjusted
 rows too: they come from moments aggregated in DuckDB), so each is a single
 task; with the Dask runner the tasks execute on the cluster's workers.
-Collecting the inputs and writing the results touch the warehouse and are
-tasks with retries.
+Collecting the inputs and writing the results touch the warehouse: they wait for
+its lock (up to ``--wait`` / ``$TAKEUP_LOCK_WAIT`` seconds, see
+:func:`takeup.pipeline.warehouse.connect_waiting`) rather than retry.  The ``runs``
+row is owned by the flow's process, so a killed flow's run is marked ``abandoned``
+by the next run.
 """
 
 from __future__ import annotations
@@ -24,6 +27,7 @@ from takeup.flows.api_server import check_configured_api
 from takeup.flows.runners import make_task_runner
 from takeup.pipeline.run import stages as core
 from takeup.pipeline.run import writer
+from takeup.pipeline.run.abandoned import process_owner
 from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, collect_inputs, new_run_context
 from takeup.pipeline.warehouse import connect
 from takeup.schemas.config import StudyConfig, parse_config
@@ -31,16 +35,16 @@ from takeup.schemas.config import StudyConfig, parse_config
 __all__ = ["monitor_flow", "run_orchestrated", "AsTasks"]
 
 
-@task(name="collect-inputs", cache_policy=NO_CACHE, retries=3, retry_delay_seconds=[1, 4, 16])
-def collect_task(warehouse: str, as_of: str | None, config_json: str | None, flow_run_id: str | None
-                 ) -> tuple[RunContext, RunInputs]:
+@task(name="collect-inputs", cache_policy=NO_CACHE)
+def collect_task(warehouse: str, as_of: str | None, config_json: str | None, flow_run_id: str | None,
+                 owner: dict | None = None) -> tuple[RunContext, RunInputs]:
     import json
     con = connect(warehouse)
     try:
         config = parse_config(json.loads(config_json)) if config_json else core.resolve_config(con, None)
         ctx = new_run_context(config, as_of=date.fromisoformat(as_of) if as_of else None,
                               mode="orchestrated", flow_run_id=flow_run_id)
-        writer.start_run(con, ctx)
+        writer.start_run(con, ctx, owner)
         try:
             return ctx, collect_inputs(con, ctx)
         except BaseException as exc:
@@ -50,7 +54,7 @@ def collect_task(warehouse: str, as_of: str | None, config_json: str | None, flo
         con.close()
 
 
-@task(name="write-results", cache_policy=NO_CACHE, retries=3, retry_delay_seconds=[1, 4, 16])
+@task(name="write-results", cache_policy=NO_CACHE)
 def write_task(warehouse: str, ctx: RunContext, results: writer.RunResults, inputs: RunInputs, timings: dict):
     con = connect(warehouse)
     try:
@@ -82,7 +86,7 @@ def monitor_flow(warehouse: str, as_of: str | None = None, config_json: str | No
     flow_run_id = str(runtime_flow_run.id) if runtime_flow_run.id else None
     timings: dict = {}
     with core.timed(timings, "collect_inputs"):
-        ctx, inputs = collect_task(warehouse, as_of, config_json, flow_run_id)
+        ctx, inputs = collect_task(warehouse, as_of, config_json, flow_run_id, process_owner())
     try:
         stages = core.STAGES
         results = core.compute_all(inputs, ctx, timings, call=AsTasks(stages), stages=stages)

@@ -1,7 +1,8 @@
 """Command line: ``takeup <command> ...`` (argument parsing and printing only).
 
 Exit codes: 0 success; 1 data problems reported (rejected files, quarantined
-rows, a run that finished with errors); 2 usage or configuration error;
+rows, a run that finished with errors), or the warehouse stayed locked by another
+process for the whole ``--wait``; 2 usage or configuration error;
 3 internal error (a bug: one line, the traceback only with ``--log-level
 debug``); 4 the machine refused (out of memory, disk full, permission denied).
 Every failure is one line on stderr.
@@ -66,9 +67,29 @@ def _mode_arg(p: argparse.ArgumentParser) -> None:
                    help="permission bits of the written file(s) (default 600: owner only)")
 
 
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of seconds: {text!r}") from None
+    if not 0 <= value < 1e7:
+        raise argparse.ArgumentTypeError(f"seconds must be 0 or more (and below 10,000,000): {text!r}")
+    return value
+
+
+#: the environment variable through which --wait reaches every connection (and the flows' subprocesses);
+#: the same name as takeup.pipeline.warehouse.LOCK_WAIT_ENV (not imported here: start-up time)
+_LOCK_WAIT_ENV = "TAKEUP_LOCK_WAIT"
+#: seconds to wait for the warehouse lock: on the command line, and under serve (a scheduled run waits longer)
+WAIT_DEFAULT, WAIT_DEFAULT_SERVE = 60.0, 900.0
+
+
 def _warehouse_arg(p: argparse.ArgumentParser) -> None:
     p.add_argument("--warehouse", type=Path, default=None, metavar="PATH",
                    help="DuckDB warehouse file (default: $TAKEUP_WAREHOUSE, else ./takeup.duckdb)")
+    p.add_argument("--wait", type=_seconds, default=None, metavar="SECONDS",
+                   help="how long to wait while another process holds the warehouse (default 60; 900 under "
+                        "serve); then exit 1 saying who holds it")
     p.add_argument("--log-level", default="warning", choices=["debug", "info", "warning", "error"],
                    help="logging verbosity on stderr (default: warning; debug adds tracebacks of internal errors)")
     p.add_argument("--quiet", action="store_true", help="print only errors and the final summary")
@@ -91,6 +112,8 @@ def build_parser() -> argparse.ArgumentParser:
     _warehouse_arg(p)
     p.add_argument("--kind", choices=["assignment", "uptake", "outcome"],
                    help="record kind of all FILES (default: detected from each file's columns)")
+    _source_args(p)
+    _drop_folder_args(p)
     p.add_argument("files", nargs="+", type=Path, metavar="FILE")
 
     p = sub.add_parser("demo", help="generate the demo scenario, ingest it and run the monitoring",
@@ -164,6 +187,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--config", type=Path, required=True, help="study configuration (TOML)")
     p.add_argument("--incoming", type=Path, default=None,
                    help="directory the scheduled ingest picks files up from (default: none; monitoring only)")
+    _drop_folder_args(p, serve=True)
     p.add_argument("--once", action="store_true", help="register the deployments and exit (no serving loop)")
 
     p = sub.add_parser("api-server", help="start a local Prefect API server for orchestrated runs to reuse",
@@ -177,6 +201,45 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--log-level", default="warning", choices=["debug", "info", "warning", "error"],
                    help="logging verbosity on stderr")
     return parser
+
+
+def _delimiter(text: str) -> str:
+    named = {"auto": "auto", "comma": ",", "semicolon": ";", "tab": "\t", "\\t": "\t", "pipe": "|"}
+    if text in named:
+        return named[text]
+    if text in (",", ";", "\t", "|"):
+        return text
+    raise argparse.ArgumentTypeError(f"unknown delimiter {text!r}; accepted: auto, ',', ';', tab, '|'")
+
+
+def _encoding(text: str) -> str:
+    import codecs
+    try:
+        return codecs.lookup(text).name
+    except LookupError:
+        raise argparse.ArgumentTypeError(f"unknown text encoding {text!r} (e.g. utf-8, cp1252, latin-1, utf-16)"
+                                         ) from None
+
+
+def _source_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--delimiter", type=_delimiter, default="auto", metavar="auto|,|;|tab|'|'",
+                   help="CSV delimiter (default auto: the one that splits the header into column names; an explicit "
+                        "one rejects files that look otherwise separated)")
+    p.add_argument("--encoding", type=_encoding, default="utf-8",
+                   help="text encoding of CSV files (default utf-8; e.g. cp1252 for Windows exports)")
+
+
+def _drop_folder_args(p: argparse.ArgumentParser, serve: bool = False) -> None:
+    default = " (default: INCOMING/processed)" if serve else ""
+    p.add_argument("--processed", type=Path, default=None, metavar="DIR",
+                   help="move each file here once its batch is committed (or its content was already loaded)"
+                        + default)
+    p.add_argument("--rejected", type=Path, default=None, metavar="DIR",
+                   help="move each rejected file here, with NAME.reason.txt beside it"
+                        + (" (default: INCOMING/rejected)" if serve else ""))
+    p.add_argument("--settle", type=_seconds, default=None, metavar="SECONDS",
+                   help="with --processed/--rejected: leave files changed within the last SECONDS for the next "
+                        "pass, as still being written (default 10)")
 
 
 def _orchestration_args(p: argparse.ArgumentParser) -> None:
@@ -221,6 +284,10 @@ def _print_reports(reports, quiet: bool) -> int:
     tot = {"read": 0, "loaded": 0, "quarantined": 0, "duplicate": 0, "pending": 0}
     for r in reports:
         name = Path(r.file).name
+        if r.status == "deferred":
+            if not quiet:
+                print(f"waiting   {name}: {r.message}")
+            continue
         if r.status == "duplicate_batch":
             if not quiet:
                 print(f"skipped   {name}: {r.message}")
@@ -240,26 +307,39 @@ def _print_reports(reports, quiet: bool) -> int:
             why = ""
             if r.reasons:
                 why = "  (" + ", ".join(f"{k} {v}" for k, v in r.reasons.items()) + ")"
-            print(f"loaded    {name} [{r.kind}]: read {r.rows_read}, loaded {r.rows_loaded}, "
+            how = f" ({r.message})" if r.message else ""
+            print(f"loaded    {name} [{r.kind}]{how}: read {r.rows_read}, loaded {r.rows_loaded}, "
                   f"quarantined {r.rows_quarantined}, duplicate {r.rows_duplicate}{why}")
-    n_files = len(reports)
+    n_wait = sum(r.status == "deferred" for r in reports)
+    n_files = len(reports) - n_wait
     n_skip = sum(r.status == "duplicate_batch" for r in reports)
     n_rej = sum(r.status == "rejected" for r in reports)
-    print(f"{n_files} file(s): {n_files - n_skip - n_rej} loaded, {n_skip} already loaded, {n_rej} rejected; "
+    waiting = f" ({n_wait} still being written, left for the next pass)" if n_wait else ""
+    print(f"{n_files} file(s){waiting}: {n_files - n_skip - n_rej} loaded, {n_skip} already loaded, {n_rej} rejected; "
           f"rows read {tot['read']} = loaded {tot['loaded']} + quarantined {tot['quarantined']} "
           f"+ duplicate {tot['duplicate']}" + (f"; {tot['pending']} loaded rows await their assignment"
                                                if tot["pending"] else ""))
     return EXIT_DATA if problems else EXIT_OK
 
 
-def _ingest_paths(warehouse: Path, files, kind, quiet: bool):
+def _ingest_paths(warehouse: Path, files, kind, quiet: bool, args=None):
+    progress = not quiet and sys.stdout.isatty()
+    if args is not None and (args.processed is not None or args.rejected is not None):
+        from takeup.pipeline.ingest.drop_folder import DEFAULT_SETTLE_SECONDS, DropFolders, ingest_drop_folder
+        folders = DropFolders(args.processed, args.rejected, tuple(files),
+                              DEFAULT_SETTLE_SECONDS if args.settle is None else args.settle)
+        return ingest_drop_folder(warehouse, files, folders, kind=kind, progress=progress,
+                                  delimiter=args.delimiter, encoding=args.encoding)
+    if args is not None and args.settle is not None:
+        raise UsageError("--settle applies to drop folders: give --processed and/or --rejected")
     from takeup.pipeline.ingest.many_files import ingest_paths
-    return ingest_paths(warehouse, files, kind=kind, progress=not quiet and sys.stdout.isatty())
+    extra = {"delimiter": args.delimiter, "encoding": args.encoding} if args is not None else {}
+    return ingest_paths(warehouse, files, kind=kind, progress=progress, **extra)
 
 
 def cmd_ingest(args) -> int:
     log.info("ingest: %d path(s) into %s", len(args.files), _warehouse(args))
-    reports = _ingest_paths(_warehouse(args), args.files, args.kind, args.quiet)
+    reports = _ingest_paths(_warehouse(args), args.files, args.kind, args.quiet, args)
     return _print_reports(reports, args.quiet)
 
 
@@ -514,7 +594,14 @@ def cmd_serve(args) -> int:
     from takeup.schemas.config import load_config
     config = load_config(args.config)
     from takeup.flows.serve import serve_deployments
-    serve_deployments(_warehouse(args), config, args.config, incoming=args.incoming, once=args.once)
+    if args.incoming is None and (args.processed or args.rejected or args.settle is not None):
+        raise UsageError("--processed, --rejected and --settle need --incoming")
+    drop = None
+    if args.incoming is not None:
+        drop = {"processed": str(args.processed or args.incoming / "processed"),
+                "rejected": str(args.rejected or args.incoming / "rejected"),
+                "settle": 10.0 if args.settle is None else args.settle}
+    serve_deployments(_warehouse(args), config, args.config, incoming=args.incoming, once=args.once, drop=drop)
     return EXIT_OK
 
 
@@ -559,16 +646,35 @@ def _one_line(exc: BaseException) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    from takeup.pipeline.errors import (ExportError, InfrastructureError, IngestError, OptionError, ReportError,
-                                        ReproduceError, RunnerError, WarehouseError, infrastructure_problem)
-    from takeup.pipeline.pseudonym import PseudonymKeyError
-    from takeup.schemas.config import ConfigError
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.log_level)
     where = f"takeup {args.command}"
+    wait = getattr(args, "wait", None)
+    if wait is None:
+        wait = WAIT_DEFAULT_SERVE if args.command == "serve" else WAIT_DEFAULT
+    saved_wait = os.environ.get(_LOCK_WAIT_ENV)
+    os.environ[_LOCK_WAIT_ENV] = f"{wait:g}"
+    try:
+        return _dispatch(args, where)
+    finally:
+        if saved_wait is None:
+            os.environ.pop(_LOCK_WAIT_ENV, None)
+        else:
+            os.environ[_LOCK_WAIT_ENV] = saved_wait
+
+
+def _dispatch(args, where: str) -> int:
+    from takeup.pipeline.errors import (ExportError, InfrastructureError, IngestError, OptionError, ReportError,
+                                        ReproduceError, RunnerError, WarehouseBusyError, WarehouseError,
+                                        infrastructure_problem)
+    from takeup.pipeline.pseudonym import PseudonymKeyError
+    from takeup.schemas.config import ConfigError
     try:
         return COMMANDS[args.command](args)
+    except WarehouseBusyError as exc:
+        print(f"{where}: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_DATA
     except (ConfigError, UsageError, OptionError, RunnerError, PseudonymKeyError) as exc:
         print(f"{where}: {_one_line(exc)}", file=sys.stderr)
         return EXIT_USAGE

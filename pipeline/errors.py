@@ -4,12 +4,16 @@ from __future__ import annotations
 
 import errno
 
-__all__ = ["WarehouseError", "IngestError", "ExportError", "ReportError", "ReproduceError", "RunnerError",
+__all__ = ["WarehouseError", "WarehouseBusyError", "IngestError", "ExportError", "ReportError", "ReproduceError", "RunnerError",
            "OptionError", "InfrastructureError", "infrastructure_problem"]
 
 
 class WarehouseError(RuntimeError):
     """A warehouse that cannot be used as asked (missing, wrong key, locked)."""
+
+
+class WarehouseBusyError(WarehouseError):
+    """The warehouse stayed locked by another process for the whole wait (exit code 1, not a usage error)."""
 
 
 class IngestError(ValueError):
@@ -67,6 +71,8 @@ def infrastructure_problem(exc: BaseException) -> str | None:
         return _ERRNO_TEXT[exc.errno]
     name = type(exc).__name__
     text = str(exc).lower()
+    if "no space left on device" in text:          # also a failed COMMIT (TransactionException) writing the WAL
+        return "disk full"
     if name == "OutOfMemoryException" or "out of memory" in text or "failed to allocate" in text:
         return "out of memory"
     if name in ("IOException", "IOError", "PermissionException") or "io error" in text:

@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
-from takeup.pipeline.errors import WarehouseError  # noqa: F401  (re-exported)
+from takeup.pipeline.errors import WarehouseBusyError, WarehouseError  # noqa: F401  (re-exported)
 
 import os
+import random
+import re
 import shutil
+import sys
 import tempfile
+import time
 from contextlib import contextmanager
 from datetime import datetime, timezone
 from pathlib import Path
@@ -23,7 +27,8 @@ from takeup.schemas.records import STORAGE_TABLES
 __all__ = [
     "WarehouseError", "SCHEMA_VERSION", "default_warehouse_path", "init_warehouse", "connect",
     "stored_config", "store_config", "check_key", "all_table_models", "transaction", "private_umask",
-    "temp_dir_for", "memory_connection",
+    "temp_dir_for", "memory_connection", "connect_waiting", "lock_wait_seconds", "DEFAULT_LOCK_WAIT",
+    "LOCK_WAIT_ENV",
 ]
 
 #: 2: salted scrypt key check instead of the unsalted fingerprint; length-prefixed pseudonym messages
@@ -53,12 +58,49 @@ def _create_tables(con: duckdb.DuckDBPyConnection) -> None:
         if table not in tables:
             con.execute(create_table_sql(table, model))
             continue
+        if table in _WIDENED_CHECKS:
+            _widen_checks(con, table, model, [c for t, c in existing if t == table])
         for col in columns_of(model):
             if (table, col.name) not in existing and col.nullable:
                 con.execute(f'ALTER TABLE "{table}" ADD COLUMN "{col.name}" {col.sql_type}')
     from takeup.schemas.results import create_views_sql
     for sql in create_views_sql():
         con.execute(sql)
+
+
+#: tables whose value CHECKs a later version widened (``runs.status`` gained ``abandoned``)
+_WIDENED_CHECKS = ("runs",)
+_TARGET_CHECKS: dict[str, list[str]] = {}     # DDL -> its CHECK expressions as DuckDB prints them
+
+
+def _check_texts(con: duckdb.DuckDBPyConnection, table: str) -> list[str]:
+    return sorted(r[0] for r in con.execute(
+        "SELECT expression FROM duckdb_constraints() WHERE table_name = $t AND constraint_type = 'CHECK' "
+        "AND database_name = current_database() AND schema_name = 'main'", {"t": table}).fetchall())
+
+
+def _widen_checks(con: duckdb.DuckDBPyConnection, table: str, model, columns: list[str]) -> None:
+    """Rebuild ``table`` when its CHECKs differ from the model's (DuckDB cannot alter a CHECK).
+
+    Runs inside the writer's lock, in one transaction; the rows are copied column by name.
+    """
+    wanted = create_table_sql(table, model)
+    if wanted not in _TARGET_CHECKS:
+        with duckdb.connect(":memory:") as scratch:
+            scratch.execute(wanted)
+            _TARGET_CHECKS[wanted] = _check_texts(scratch, table)
+    if _check_texts(con, table) == _TARGET_CHECKS[wanted]:
+        return
+    from takeup.schemas.ddl import columns_of
+    keep = [c.name for c in columns_of(model) if c.name in columns]
+    cols = ", ".join(f'"{c}"' for c in keep)
+    tmp = f"_{table}_widened"
+    with transaction(con):
+        con.execute(f'DROP TABLE IF EXISTS "{tmp}"')
+        con.execute(create_table_sql(tmp, model))
+        con.execute(f'INSERT INTO "{tmp}" ({cols}) SELECT {cols} FROM "{table}"')
+        con.execute(f'DROP TABLE "{table}"')
+        con.execute(f'ALTER TABLE "{tmp}" RENAME TO "{table}"')
 
 
 #: DuckDB's memory budget for a connection (it spills to disk beyond it): keeps a run on
@@ -108,11 +150,103 @@ def memory_connection() -> Iterator[duckdb.DuckDBPyConnection]:
         shutil.rmtree(d, ignore_errors=True)
 
 
-def connect(path: Path | str, read_only: bool = False) -> duckdb.DuckDBPyConnection:
+# ----------------------------------------------------------------------------- the lock: writers wait
+#: seconds a command waits for another process's lock on a DuckDB file before giving up
+#: (the command line's default; ``takeup serve`` uses 900); ``--wait`` sets :data:`LOCK_WAIT_ENV`
+DEFAULT_LOCK_WAIT = 60.0
+LOCK_WAIT_ENV = "TAKEUP_LOCK_WAIT"
+#: the longest pause between two attempts (the pauses double from 50 ms, with +-50 % jitter so that
+#: several waiting writers do not retry in step)
+_MAX_PAUSE = 1.0
+
+_LOCK_RE = re.compile(r"Conflicting lock is held in (?P<prog>.*?)(?: \(PID (?P<pid>\d+)\))?(?: by user (?P<user>\S+))?\.(?:\s|$)")
+
+
+def lock_wait_seconds() -> float:
+    """How long to wait for a lock: ``$TAKEUP_LOCK_WAIT`` (seconds), else :data:`DEFAULT_LOCK_WAIT`."""
+    text = os.environ.get(LOCK_WAIT_ENV)
+    if text:
+        try:
+            value = float(text)
+        except ValueError:
+            raise WarehouseError(f"{LOCK_WAIT_ENV}={text!r} is not a number of seconds") from None
+        if value >= 0:
+            return value
+    return DEFAULT_LOCK_WAIT
+
+
+def _lock_holder(exc: BaseException) -> str | None:
+    """'PID 7412, /usr/bin/python3.11' from DuckDB's lock error; '' for a lock error naming nobody; else None."""
+    text = str(exc)
+    if "Could not set lock" not in text and "Conflicting lock" not in text:
+        return None
+    m = _LOCK_RE.search(text)
+    if not m:
+        return ""
+    parts = [f"PID {m['pid']}"] if m["pid"] else []
+    parts.append(m["prog"].strip())
+    if m["user"]:
+        parts.append(f"user {m['user']}")
+    return ", ".join(p for p in parts if p)
+
+
+def _announce(message: str) -> None:
+    print(message, file=sys.stderr, flush=True)
+
+
+def connect_waiting(path: Path | str, *, read_only: bool = False, config: dict | None = None,
+                    wait: float | None = None, what: str = "warehouse") -> duckdb.DuckDBPyConnection:
+    """``duckdb.connect`` that waits, with backoff, while another process holds the file's lock.
+
+    DuckDB lets one process write a file, or several read it, never both.  A writer
+    (ingest, run, publish, the flows) and a reader (alerts, runs, report, export) both
+    wait up to ``wait`` seconds (default :func:`lock_wait_seconds`), announcing once on
+    stderr that they wait and on what.  After the wait:
+    :class:`~takeup.pipeline.errors.WarehouseBusyError`, a plain sentence naming the
+    holder when DuckDB does.  Any other failure to open is a :class:`WarehouseError`.
+
+    Everything that opens a DuckDB file for takeup goes through here
+    (:func:`connect` for the warehouse itself).
+    """
+    p = Path(path)
+    total = lock_wait_seconds() if wait is None else max(0.0, float(wait))
+    deadline = time.monotonic() + total
+    pause = 0.05
+    announced = False
+    holder = ""
+    while True:
+        try:
+            return duckdb.connect(str(p), read_only=read_only, config=config or {})
+        except duckdb.IOException as exc:
+            found = _lock_holder(exc)
+            if found is None:
+                raise WarehouseError(f"cannot open {what} {p}: {str(exc).splitlines()[0]}") from None
+            holder = found or holder
+        except duckdb.Error as exc:
+            raise WarehouseError(f"cannot open {what} {p}: {str(exc).splitlines()[0]}") from None
+        left = deadline - time.monotonic()
+        if left <= 0:
+            who = f" ({holder})" if holder else ""
+            raise WarehouseBusyError(
+                f"{what} {p} is still locked by another process{who} after waiting {total:g} s: one writer at a "
+                "time (ingest, run, publish), and no writer while a program holds it open. Try again when that "
+                "process has finished, wait longer with --wait SECONDS, or stop the process; dashboards should "
+                "read a published copy, never the warehouse") from None
+        if not announced:
+            who = f" ({holder})" if holder else ""
+            _announce(f"takeup: {what} {p} is locked by another process{who}; "
+                      f"waiting up to {total:g} s for it ...")
+            announced = True
+        time.sleep(min(left, pause * random.uniform(0.5, 1.5)))
+        pause = min(pause * 2, _MAX_PAUSE)
+
+
+def connect(path: Path | str, read_only: bool = False, wait: float | None = None) -> duckdb.DuckDBPyConnection:
     """Open an existing warehouse (tables are created if a newer version added some).
 
-    The process umask becomes restrictive (:func:`private_umask`) and DuckDB spills to the
-    private directory :func:`temp_dir_for`.
+    Waits for another process's lock (:func:`connect_waiting`; ``wait`` seconds, default
+    :func:`lock_wait_seconds`).  The process umask becomes restrictive
+    (:func:`private_umask`) and DuckDB spills to the private directory :func:`temp_dir_for`.
     """
     p = Path(path)
     if not p.exists():
@@ -121,14 +255,17 @@ def connect(path: Path | str, read_only: bool = False) -> duckdb.DuckDBPyConnect
     limit = _memory_limit()
     config = {"memory_limit": limit, "temp_directory": str(temp_dir_for(p))}
     try:
-        con = duckdb.connect(str(p), read_only=read_only, config=config)
-    except duckdb.IOException as exc:
-        raise WarehouseError(f"cannot open warehouse {p}: {str(exc).splitlines()[0]}") from None
-    except duckdb.Error as exc:
-        raise WarehouseError(f"cannot open warehouse {p} with memory limit {limit!r}: "
-                             f"{str(exc).splitlines()[0]}") from None
+        con = connect_waiting(p, read_only=read_only, config=config, wait=wait)
+    except WarehouseError as exc:
+        if "memory_limit" in str(exc) or "memory limit" in str(exc):
+            raise WarehouseError(f"{exc} (memory limit {limit!r})") from None
+        raise
     if not read_only:
-        _create_tables(con)
+        try:
+            _create_tables(con)
+        except BaseException:
+            con.close()
+            raise
     return con
 
 
@@ -145,7 +282,7 @@ def init_warehouse(path: Path | str, config: StudyConfig | None = None) -> tuple
         key_path = create_key_file(p)
     key = load_key(p)
     private_umask()
-    con = duckdb.connect(str(p), config={"memory_limit": _memory_limit(), "temp_directory": str(temp_dir_for(p))})
+    con = connect_waiting(p, config={"memory_limit": _memory_limit(), "temp_directory": str(temp_dir_for(p))})
     try:
         os.chmod(p, 0o600)
         _create_tables(con)

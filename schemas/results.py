@@ -35,13 +35,16 @@ class RunRow(_Result):
     as_of: date = Field(description="Cutoff date: data observed on or before it are used.")
     started_at: datetime = Field(description="UTC start time.")
     finished_at: Optional[datetime] = Field(default=None, description="UTC end time.")
-    status: Literal["running", "ok", "partial", "failed"] = Field(description="Outcome of the run.")
+    status: Literal["running", "ok", "partial", "failed", "abandoned"] = Field(
+        description="Outcome of the run (`abandoned`: its process ended before the run finished, e.g. killed; "
+                    "marked by the next run; it has no result rows).")
     code_version: str = Field(description="takeup version that computed the run.")
     config_hash: str = Field(description="SHA-256 of the study configuration used.")
     input_fingerprint: str = Field(description="SHA-256 over the loaded batches' content hashes (the input state).")
     n_batches: int = Field(description="Loaded batches the run read.")
     n_sites: int = Field(description="Sites with at least one assignment as of the cutoff.")
-    timings_json: Optional[str] = Field(default=None, description="Seconds per stage, JSON.")
+    timings_json: Optional[str] = Field(default=None, description="Seconds per stage, JSON (while the run is "
+                                        "`running`: the process that owns it).")
     message: Optional[str] = Field(default=None, description="Errors or warnings of the run.")
 
 

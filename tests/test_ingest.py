@@ -239,7 +239,7 @@ def test_unexpected_column_rejects_file_with_suggestion(warehouse, tmp_path):
 @pytest.mark.parametrize("header,expected", [
     ("site_id,participant_id,foo", "cannot tell the record kind"),
     ("", "the file is empty"),
-    ("\x00\x01garbage\xff", "cannot"),
+    ("\x00\x01garbage\xff", "looks binary"),    # NUL bytes: named as binary, not parsed
 ])
 def test_unreadable_or_unknown_kind_is_rejected(warehouse, tmp_path, header, expected):
     f = tmp_path / "x.csv"

@@ -33,6 +33,7 @@ import duckdb
 import numpy as np
 
 from takeup.pipeline.pseudonym import PseudonymKey
+from takeup.pipeline.ingest.sniff import SourcePlan, sniff_source
 from takeup.pipeline.ingest.row_checks import (ParsePlan, build_parse_plan, is_numeric_type, known_columns,
                                                required_columns)
 from takeup.pipeline.warehouse import transaction
@@ -59,7 +60,7 @@ class BatchReport:
     """What happened to one file."""
 
     file: str
-    status: str                 # loaded | duplicate_batch | rejected
+    status: str                 # loaded | duplicate_batch | rejected (| deferred: a drop-folder file still being written)
     batch_id: str | None = None
     kind: str | None = None
     rows_read: int = 0
@@ -194,13 +195,13 @@ def detect_kind(columns: list[str], file: str) -> str:
                       f"closest is '{best}', which also needs {', '.join(missing)}")
 
 
-def _csv_header(path: Path) -> list[str]:
+def _csv_header(path: Path, delimiter: str = ",") -> list[str]:
     """The first record of a CSV file, split by Python's csv module (for checks DuckDB hides)."""
     with open(path, "rb") as fh:
         head = fh.read(1 << 20)
     text = head.decode("utf-8", errors="replace").lstrip("\ufeff")
     try:
-        row = next(csv.reader(io.StringIO(text), delimiter=",", quotechar='"'), [])
+        row = next(csv.reader(io.StringIO(text), delimiter=delimiter, quotechar='"'), [])
     except csv.Error:
         return []
     return row
@@ -227,8 +228,13 @@ def _check_header_names(names: list[str], file: str, config: StudyConfig) -> Non
                           "must name the columns")
 
 
-def _stage(con: duckdb.DuckDBPyConnection, path: Path, fmt: str, blank_lines: list[int] = ()
-           ) -> tuple[int, list[int]]:
+#: the longest CSV line read (DuckDB's default is 2 MB): a 5 MB field reaches the row checks (``too_long`` for
+#: identifiers) instead of failing the whole file; a longer line rejects the file, naming the limit
+MAX_LINE_BYTES = 32 << 20
+
+
+def _stage(con: duckdb.DuckDBPyConnection, path: Path, fmt: str, blank_lines: list[int] = (),
+           delimiter: str = ",") -> tuple[int, list[int]]:
     """Read the file into temp table ``_stage`` with a ``_row`` column; returns (rows, rejected lines).
 
     ``blank_lines`` (physical numbers) are lines the CSV reader skips: together with the
@@ -243,9 +249,10 @@ def _stage(con: duckdb.DuckDBPyConnection, path: Path, fmt: str, blank_lines: li
     con.execute("DROP TABLE IF EXISTS _stage_rej_scan")
     con.execute(
         "CREATE OR REPLACE TEMP TABLE _stage AS SELECT row_number() OVER () + 1 AS _row, * FROM read_csv($p, "
-        "header = true, all_varchar = true, delim = ',', quote = '\"', escape = '\"', null_padding = false, "
-        "store_rejects = true, rejects_table = '_stage_rej', rejects_scan = '_stage_rej_scan', strict_mode = true)",
-        {"p": src})
+        "header = true, all_varchar = true, delim = $d, quote = '\"', escape = '\"', null_padding = false, "
+        "store_rejects = true, rejects_table = '_stage_rej', rejects_scan = '_stage_rej_scan', strict_mode = true, "
+        "compression = 'none', max_line_size = $m)",
+        {"p": src, "d": delimiter, "m": MAX_LINE_BYTES})
     n, rejected = con.execute("SELECT (SELECT count(*) FROM _stage), "
                               "(SELECT list(DISTINCT line ORDER BY line) FROM _stage_rej)").fetchone()
     rejected = list(rejected or [])
@@ -272,12 +279,35 @@ _MALFORMED_TEXT = {
 }
 
 
-def _read_failure(exc: duckdb.Error, path: Path, fmt: str) -> Exception:
+def _first_long_line(path: Path, limit: int) -> int | None:
+    """The physical number of the first line longer than ``limit`` bytes (chunked newline scan)."""
+    line, length = 1, 0
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 22), b""):
+            nl = np.flatnonzero(np.frombuffer(chunk, dtype=np.uint8) == 10)
+            if not len(nl):
+                length += len(chunk)
+                if length > limit:
+                    return line
+                continue
+            lengths = np.diff(np.concatenate(([-1], nl))) - 1
+            lengths[0] += length
+            long = np.flatnonzero(lengths > limit)
+            if len(long):
+                return line + int(long[0])
+            line += len(nl)
+            length = len(chunk) - int(nl[-1]) - 1
+            if length > limit:
+                return line
+    return None
+
+
+def _read_failure(exc: duckdb.Error, path: Path, fmt: str, name: str | None = None) -> Exception:
     """The error to raise when DuckDB cannot read the file: infrastructure, or a one-line IngestError.
 
     DuckDB's own message is not passed on: it can quote the file's content.
     """
-    name = path.name
+    name = name or path.name
     problem = infrastructure_problem(exc)
     if problem:
         return InfrastructureError(f"{name}: {problem} while reading the file")
@@ -290,6 +320,11 @@ def _read_failure(exc: duckdb.Error, path: Path, fmt: str) -> Exception:
                            "the file cannot be split into rows")
     if "invalid unicode" in text.lower():
         return IngestError(f"{name}: the file is not UTF-8 text")
+    if "maximum line size" in text.lower():
+        line = _first_long_line(path, MAX_LINE_BYTES)
+        where = f"line {line}" if line else "a line"
+        return IngestError(f"{name}: {where} is longer than {MAX_LINE_BYTES >> 20} MiB, the most a record may "
+                           "take; no field needs that much (a missing closing quote or a binary value?)")
     return IngestError(f"{name}: cannot read the file as CSV (comma-separated, double quotes, a header line)")
 
 
@@ -503,8 +538,13 @@ def _cleanup(con) -> None:
 
 
 def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: PseudonymKey, config: StudyConfig,
-                kind: str | None = None, today: date | None = None) -> BatchReport:
-    """Ingest one CSV or Parquet file as one atomic batch.
+                kind: str | None = None, today: date | None = None, delimiter: str = "auto",
+                encoding: str = "utf-8") -> BatchReport:
+    """Ingest one CSV (also gzip-compressed) or Parquet file as one atomic batch.
+
+    The file is first looked at (:func:`~takeup.pipeline.ingest.sniff.sniff_source`):
+    ``delimiter`` (``auto``: the one the header shows) and ``encoding`` say how a CSV
+    file is read; spreadsheets, binary and wrongly encoded files are rejected with advice.
 
     Returns a :class:`BatchReport`.  A file that cannot be read, or whose columns do
     not fit a record kind, is reported with status ``rejected`` (and recorded in
@@ -542,19 +582,26 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
                         {"b": batch_id, "f": name, "s": sha, "k": kind, "t": received, "m": message})
         return BatchReport(file=str(path), status="rejected", batch_id=batch_id, kind=kind, message=message)
 
+    source: SourcePlan | None = None
     try:
         with transaction(con):
             if path.stat().st_size == 0:
                 raise IngestError(f"{name}: the file is empty (no header, no rows)")
+            source = _sniff(con, path, config, delimiter, encoding)
+            fmt, src = source.fmt, source.read_path
+            if source.temporary:
+                blank_lines = _read_pass(src, scan_lines=True)[1]
             if fmt == "csv":
-                _check_header_names(_csv_header(path), name, config)   # before DuckDB renames duplicates
+                _check_header_names(_csv_header(src, source.delimiter), name, config)   # before DuckDB renames
             try:
-                rows_read, rejected = _stage(con, path, fmt, blank_lines)
+                rows_read, rejected = _stage(con, src, fmt, blank_lines, source.delimiter)
             except duckdb.Error as exc:
-                raise _read_failure(exc, path, fmt) from None
+                raise _read_failure(exc, src, fmt, name) from None
             columns = _stage_columns(con, name, config)
             file_kind = kind or detect_kind(list(columns), name)
             covariates = _check_columns(file_kind, columns, config, name)
+            if rows_read == 0:
+                raise IngestError(f"{name}: the file names its columns but holds no records; nothing to load")
             also = ("cluster_id",) if file_kind == "assignment" and config.randomisation_unit == "cluster" else ()
             plan = build_parse_plan(file_kind, columns, covariates, key.sql_expr, also_required=also)
             _parse(con, plan, key, config, today)
@@ -613,6 +660,24 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
     except BaseException:
         _cleanup(con)
         raise
+    finally:
+        if source is not None:
+            source.cleanup()
     return BatchReport(file=str(path), status="loaded", batch_id=batch_id, kind=file_kind, rows_read=rows_read,
                        rows_loaded=n_ok, rows_quarantined=quarantined, rows_duplicate=n_dup,
-                       rows_pending=pending, reasons=reasons)
+                       rows_pending=pending, reasons=reasons, message=source.note)
+
+
+def _sniff(con: duckdb.DuckDBPyConnection, path: Path, config: StudyConfig, delimiter: str,
+           encoding: str) -> SourcePlan:
+    """How to read ``path`` (see :mod:`takeup.pipeline.ingest.sniff`); copies go to the connection's spill dir."""
+    temp = con.execute("SELECT current_setting('temp_directory')").fetchone()[0]
+    known = _all_known(config)
+    try:
+        return sniff_source(path, known, max_columns=len(known), temp_dir=Path(temp) if temp else None,
+                            delimiter=delimiter, encoding=encoding)
+    except OSError as exc:
+        problem = infrastructure_problem(exc)
+        if problem:
+            raise InfrastructureError(f"{path.name}: {problem} while reading the file") from None
+        raise IngestError(f"{path.name}: cannot read the file: {exc.strerror}") from None

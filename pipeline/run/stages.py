@@ -226,7 +226,10 @@ def run_monitoring(warehouse: Path | str, as_of: date | None = None, config: Stu
             with timed(timings, "write"):
                 counts = write_results(con, ctx, results)
         except BaseException as exc:
-            finish_run(con, ctx, "failed", inputs, timings, f"{type(exc).__name__}: {exc}")
+            try:
+                finish_run(con, ctx, "failed", inputs, timings, f"{type(exc).__name__}: {exc}")
+            except Exception:     # the warehouse cannot take even that (disk full): the next run marks it abandoned
+                pass
             raise
         status, message = "ok", None
         finish_run(con, ctx, status, inputs, timings, message)

@@ -3,7 +3,9 @@
 The run's stages (:mod:`takeup.pipeline.run.stages`) compute rows; this module is
 the only one that writes them.  A ``runs`` row is written (status ``running``)
 before the work and updated at the end (``ok`` or ``failed``; ``partial`` is kept
-for runs stored by versions whose per-site tasks could fail on their own).
+for runs stored by versions whose per-site tasks could fail on their own; a run whose
+process died in between is marked ``abandoned`` by the next one, see
+:mod:`takeup.pipeline.run.abandoned`).
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ from typing import Any
 import duckdb
 import pyarrow as pa
 
+from takeup.pipeline.run.abandoned import mark_abandoned_runs, process_owner
 from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.warehouse import store_config, transaction
 from takeup.schemas.ddl import columns_of
@@ -104,11 +107,19 @@ def write_results(con: duckdb.DuckDBPyConnection, ctx: RunContext, results: RunR
     return counts
 
 
-def start_run(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> None:
+def start_run(con: duckdb.DuckDBPyConnection, ctx: RunContext, owner: dict | None = None) -> list[str]:
+    """Write the run's ``running`` row, owned by ``owner`` (default: this process).
+
+    Earlier runs whose process is gone are marked ``abandoned`` first
+    (:func:`~takeup.pipeline.run.abandoned.mark_abandoned_runs`); returns their ids.
+    """
+    abandoned = mark_abandoned_runs(con)
     store_config(con, ctx.config)
     con.execute("INSERT INTO runs VALUES ($run, $flow, $mode, $as_of, $start, NULL, 'running', $ver, $cfg, '', 0, 0, "
-                "NULL, NULL)", {"run": ctx.run_id, "flow": ctx.flow_run_id, "mode": ctx.mode, "as_of": ctx.as_of,
-                                "start": ctx.started_at, "ver": code_version(), "cfg": ctx.config_hash})
+                "$owner, NULL)", {"run": ctx.run_id, "flow": ctx.flow_run_id, "mode": ctx.mode, "as_of": ctx.as_of,
+                                  "start": ctx.started_at, "ver": code_version(), "cfg": ctx.config_hash,
+                                  "owner": json.dumps({"owner": owner or process_owner()})})
+    return abandoned
 
 
 def finish_run(con: duckdb.DuckDBPyConnection, ctx: RunContext, status: str, inputs: RunInputs | None,
