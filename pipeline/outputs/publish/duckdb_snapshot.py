@@ -72,10 +72,10 @@ def publish_duckdb(con: duckdb.DuckDBPyConnection, target: Path, run_id: str, mi
         raise PublishError(f"DuckDB snapshot target {target}: its folder {target.parent} does not exist")
     run = published_run(con, run_id)
     history = [r[0] for r in con.execute(RUNS_UP_TO + " ORDER BY r.started_at, r.run_id", {"run": run_id}).fetchall()]
+    _clean_leftovers(target)
     old = snapshot_info(target)
     if old == {"run_id": run_id, "min_cell_count": min_cell_count, "runs": history, "schema_version": schema_version}:
         return "unchanged", run_row_count(con, run_id), f"{target} already holds this run"
-    _clean_leftovers(target)
     tmp = target.with_name(f".{target.name}.tmp-{secrets.token_hex(6)}")
     now = datetime.now(timezone.utc)
     try:

@@ -116,13 +116,13 @@ def publish_parquet(con: duckdb.DuckDBPyConnection, folder: Path, run_id: str, m
     _check_folder(folder)
     run = published_run(con, run_id)
     history = [r[0] for r in con.execute(RUNS_UP_TO + " ORDER BY r.started_at, r.run_id", {"run": run_id}).fetchall()]
+    _clean_leftovers(folder)
     old = current_manifest(folder)
     if (old is not None and old.get("run_id") == run_id and old.get("runs") == history
             and old.get("min_cell_count") == min_cell_count and old.get("schema_version") == schema_version):
         return "unchanged", run_row_count(con, run_id), f"current version {os.readlink(folder / CURRENT)} holds it"
     versions = folder / VERSIONS
     versions.mkdir(parents=True, exist_ok=True)
-    _clean_leftovers(folder)
     now = datetime.now(timezone.utc)
     name = _version_name(run_id, now)
     tmp = versions / f".tmp-{secrets.token_hex(6)}"
