@@ -378,3 +378,13 @@ def test_kill_9_during_publish_leaves_old_or_new_version(wh, two_runs, tmp_path)
     assert subprocess.run(cmd + ["--run", runs[1]], env=env, capture_output=True).returncode == 0
     assert verify_version(out / "current")["run_id"] == runs[1]
     assert not list((out / "versions").glob(".tmp-*")) and not list(tmp_path.glob(".dash.duckdb.tmp-*"))
+
+
+def test_redaction_of_postgres_urls():
+    from takeup.pipeline.outputs.publish.targets import Target, redact_url
+    assert redact_url("postgresql://pub:pw%40x@db:5432/m?sslmode=require&password=pw2") == \
+        "postgresql://pub@db:5432/m?sslmode=require"
+    assert redact_url("host=db user=pub password='p w' dbname=m") == "host=db user=pub password=*** dbname=m"
+    t = Target("postgres", "postgresql://pub:Secr3t@db/m")
+    assert t.name == "postgresql://pub@db/m"
+    assert "Secr3t" not in t.scrub("failed for postgresql://pub:Secr3t@db/m: bad password Secr3t")
