@@ -300,7 +300,8 @@ def cmd_demo(args) -> int:
         from takeup.pipeline.outputs.publish.targets import configured_targets
         from takeup.schemas.config import load_config
         for t in configured_targets(load_config(manifest.config_path).publish, warehouse):
-            where = f"{t.location}/current/ (Parquet; manifest.json)" if t.kind == "parquet" else t.name
+            where = {"parquet": f"{t.location}/current/ (Parquet files and manifest.json)",
+                     "duckdb": f"{t.location} (DuckDB snapshot; open it read-only)"}.get(t.kind, t.name)
             print(f"published for dashboards: {where}")
         report = out / "report.html"
         from takeup.pipeline.outputs.report import render_report
