@@ -1,5 +1,6 @@
 # takeup: the two set-up commands of the README.
-#   make demo   install, generate the demo scenario, ingest it, run the monitoring as a Prefect flow, write the report
+#   make demo   install, generate the demo scenario, ingest it, run the monitoring as a Prefect flow (which publishes
+#               the results to sample_warehouse/published/ and sample_warehouse/dashboard.duckdb), write the report
 #   make test   install with test extras and run the test suite
 PYTHON ?= python3
 VENV   ?= .venv
@@ -30,4 +31,5 @@ bench: install
 	$(PY) benchmarks/run_benchmarks.py
 
 clean:
-	rm -rf sample_warehouse/incoming sample_warehouse/*.duckdb* sample_warehouse/report.html sample_warehouse/export
+	rm -rf sample_warehouse/incoming sample_warehouse/*.duckdb* sample_warehouse/report.html sample_warehouse/export \
+		sample_warehouse/published

@@ -10,6 +10,8 @@ its lock (up to ``--wait`` / ``$TAKEUP_LOCK_WAIT`` seconds, see
 :func:`takeup.pipeline.warehouse.connect_waiting`) rather than retry.  The ``runs``
 row is owned by the flow's process, so a killed flow's run is marked ``abandoned``
 by the next run.
+A finished run is then published to the study's [publish] targets (a failed
+publication is recorded, never fails the flow).
 """
 
 from __future__ import annotations
@@ -32,7 +34,7 @@ from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, colle
 from takeup.pipeline.warehouse import connect
 from takeup.schemas.config import StudyConfig, parse_config
 
-__all__ = ["monitor_flow", "run_orchestrated", "AsTasks"]
+__all__ = ["monitor_flow", "run_orchestrated", "AsTasks", "publish_task"]
 
 
 @task(name="collect-inputs", cache_policy=NO_CACHE)
@@ -70,6 +72,26 @@ def write_task(warehouse: str, ctx: RunContext, results: writer.RunResults, inpu
         con.close()
 
 
+@task(name="publish", cache_policy=NO_CACHE)
+def publish_task(warehouse: str) -> dict:
+    """Publish finished runs to the study's [publish] targets; never fails the flow.
+
+    Each attempt (failures too) is recorded in the warehouse's `publications`
+    table; a failure is logged as a warning and retried by the next publication.
+    """
+    from prefect import get_run_logger
+    from takeup.pipeline.outputs.publish.attempts import publish_warehouse
+    try:
+        outcome = publish_warehouse(warehouse, require_targets=False)
+    except Exception as exc:  # the run is finished and stays ok whatever happens here
+        get_run_logger().warning("publication failed: %s; the next 'takeup publish' retries it",
+                                 str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+        return {"failed": 1, "attempts": 0}
+    for a in outcome.failed:
+        get_run_logger().warning("publication of run %s to %s failed: %s", a.run_id, a.target, a.message)
+    return {"failed": len(outcome.failed), "attempts": len(outcome.attempts)}
+
+
 class AsTasks:
     """A :class:`~takeup.pipeline.run.stages.StageCaller` that runs each stage's function as a Prefect task."""
 
@@ -97,7 +119,10 @@ def monitor_flow(warehouse: str, as_of: str | None = None, config_json: str | No
         finally:
             con.close()
         raise
-    return write_task(warehouse, ctx, results, inputs, timings)
+    summary = write_task(warehouse, ctx, results, inputs, timings)
+    if summary.status == "ok":
+        publish_task(warehouse)
+    return summary
 
 
 def run_orchestrated(warehouse: Path | str, as_of: date | None = None, config: StudyConfig | None = None,

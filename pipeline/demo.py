@@ -120,6 +120,10 @@ def _config_toml() -> str:
         'cron = "0 6 * * 1"',
         'timezone = "UTC"',
         "",
+        "[publish]                     # copies for dashboards, relative to the warehouse's folder",
+        'parquet_dir = "published"',
+        'duckdb_file = "dashboard.duckdb"',
+        "",
     ]
     for i, c in enumerate(CENTRES):
         lines += ["[[sites]]", f'site_id = "{c}"', f'name = "{_NAMES[i]} Learning Centre"',

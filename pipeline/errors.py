@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import errno
 
-__all__ = ["WarehouseError", "WarehouseBusyError", "IngestError", "ExportError", "ReportError", "ReproduceError", "RunnerError",
+__all__ = ["WarehouseError", "WarehouseBusyError", "IngestError", "ExportError", "ReportError", "PublishError",
+           "ReproduceError", "RunnerError",
            "OptionError", "InfrastructureError", "infrastructure_problem"]
 
 
@@ -26,6 +27,10 @@ class ExportError(RuntimeError):
 
 class ReportError(RuntimeError):
     """The report cannot be produced (no run yet, unknown run, output path unusable)."""
+
+
+class PublishError(RuntimeError):
+    """A publication target that cannot be written (the run it publishes stays as it is)."""
 
 
 class ReproduceError(RuntimeError):

@@ -43,9 +43,13 @@ def default_warehouse_path() -> Path:
 
 
 def all_table_models() -> dict:
-    """Every table the warehouse holds: storage tables, then result tables."""
+    """Every table the warehouse holds: storage tables, result tables, then `publications`.
+
+    :func:`connect` creates a missing one on open, so older warehouses gain `publications`.
+    """
+    from takeup.schemas.publication import PUBLICATION_TABLES
     from takeup.schemas.results import RESULT_TABLES
-    return {**STORAGE_TABLES, **RESULT_TABLES}
+    return {**STORAGE_TABLES, **RESULT_TABLES, **PUBLICATION_TABLES}
 
 
 def _create_tables(con: duckdb.DuckDBPyConnection) -> None:

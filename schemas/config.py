@@ -25,7 +25,7 @@ from takeup.schemas.records import ARMS
 
 __all__ = [
     "ConfigError", "StudyConfig", "OutcomeSpec", "SiteSpec", "FollowUp", "AlertThresholds",
-    "EstimationSettings", "TrendSettings", "ScheduleSettings", "ExecutionSettings", "DateWindow",
+    "EstimationSettings", "TrendSettings", "ScheduleSettings", "ExecutionSettings", "DateWindow", "PublishSettings",
     "load_config", "parse_config", "nearest_name",
 ]
 
@@ -293,6 +293,38 @@ class PlanningSettings(_Cfg):
                                                     "outcome); no forecast date without it.")
 
 
+class PublishSettings(_Cfg):
+    """Published copies for dashboards (``takeup publish``, and after every finished run)."""
+
+    parquet_dir: Optional[str] = Field(default=None, description="Folder of Parquet versions (relative paths: "
+                                                                 "to the warehouse's folder).")
+    duckdb_file: Optional[str] = Field(default=None, description="DuckDB snapshot file (relative paths: to the "
+                                                                 "warehouse's folder).")
+    postgres_url: Optional[str] = Field(default=None, description="postgresql://USER@HOST:PORT/DB, without a "
+                                                                  "password (from PGPASSWORD or ~/.pgpass; or the "
+                                                                  "whole URL in TAKEUP_PUBLISH_URL).")
+    postgres_schema: str = Field(default="takeup", pattern=r"^[a-z_][a-z0-9_]{0,62}$",
+                                 description="PostgreSQL schema of the published tables.")
+    keep_versions: int = Field(default=5, ge=1, description="Parquet versions kept.")
+    min_cell_count: int = Field(default=5, ge=1, description="Counts from 1 to min_cell_count - 1 are published as "
+                                                             "null (common practice in statistical disclosure "
+                                                             "control; 1 turns suppression off).")
+
+    @field_validator("postgres_url")
+    @classmethod
+    def _no_password(cls, v: Optional[str]) -> Optional[str]:
+        if v is None:
+            return v
+        from urllib.parse import urlsplit
+        parts = urlsplit(v)
+        if parts.scheme not in ("postgresql", "postgres"):
+            raise ValueError("postgres_url must be a postgresql://USER@HOST:PORT/DB URL")
+        if parts.password is not None or "password=" in parts.query.lower():
+            raise ValueError("postgres_url must not hold a password (the configuration is stored in the "
+                             "warehouse); give it in PGPASSWORD or ~/.pgpass, or the whole URL in TAKEUP_PUBLISH_URL")
+        return v
+
+
 class StudyConfig(_Cfg):
     """The whole study configuration."""
 
@@ -317,6 +349,7 @@ class StudyConfig(_Cfg):
     sequential: SequentialSettings = SequentialSettings()
     planning: PlanningSettings = PlanningSettings()
     dates: DateWindow = DateWindow()
+    publish: PublishSettings = PublishSettings()
 
     _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 import sys
 
 from takeup.schemas.ddl import columns_of
+from takeup.schemas.publication import PUBLICATION_TABLES
 from takeup.schemas.records import STORAGE_TABLES
 from takeup.schemas.results import LATEST_VIEWS, RESULT_TABLES
 
@@ -31,6 +32,7 @@ def contract_markdown() -> str:
               + " — the rows of the latest finished run (status `ok` or `partial`).", ""]
     parts += ["### Storage tables", ""]
     parts += [_table_md(n, m) for n, m in STORAGE_TABLES.items()]
+    parts += [_table_md(n, m) for n, m in PUBLICATION_TABLES.items()]
     return "\n".join(parts)
 
 

@@ -1,0 +1,1 @@
+"""Published copies of the result tables for dashboards: Parquet folder, DuckDB snapshot, PostgreSQL."""
