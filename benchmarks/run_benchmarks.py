@@ -638,6 +638,8 @@ def parse_args(argv=None):
                    help="print only the throughput table (small files, big file vs HMAC floor, run vs naive join, "
                         "scaling) from benchmarks/throughput_results.json (made by benchmarks/throughput.py) and "
                         "redraw benchmarks/scaling.svg")
+    p.add_argument("--readme", action="store_true",
+                   help="with --throughput-only: replace the table between the throughput markers of README.md")
     p.add_argument("--child-ingest", nargs=2, metavar=("WAREHOUSE", "FILE"), help=argparse.SUPPRESS)
     return p.parse_args(argv)
 
@@ -651,6 +653,12 @@ def main(argv=None) -> int:
     if args.throughput_only:
         text = throughput_section()
         print(text)
+        if args.readme:
+            readme = ROOT / "README.md"
+            body = readme.read_text()
+            start, end = "<!-- throughput:begin -->", "<!-- throughput:end -->"
+            i, j = body.index(start) + len(start), body.index(end)
+            readme.write_text(body[:i] + "\n" + text + "\n" + body[j:])
         return 0
     import duckdb
 
