@@ -29,7 +29,6 @@ import json
 import os
 import resource
 import shutil
-import subprocess
 import sys
 import tempfile
 import time

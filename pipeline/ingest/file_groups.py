@@ -33,13 +33,14 @@ whole or not at all.
 
 from __future__ import annotations
 
+import unicodedata
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta, timezone
 from pathlib import Path
 
 import duckdb
 
-from takeup.pipeline.errors import IngestError, InfrastructureError, infrastructure_problem
+from takeup.pipeline.errors import IngestError, infrastructure_problem
 from takeup.pipeline.ingest.batch import (_CONFLICT_REASON, NATURAL_KEYS, BatchReport, _check_columns,
                                           _check_header_names, _csv_header, _file_format, _params, _q, _read_pass,
                                           MAX_UNREGISTERED_SITES_PER_FILE, detect_kind, literal_path)
@@ -48,8 +49,6 @@ from takeup.pipeline.pseudonym import PseudonymKey
 from takeup.schemas.config import StudyConfig
 from takeup.schemas.ddl import columns_of
 from takeup.schemas.records import KIND_TABLE, RECORD_KINDS, STORED_MODELS
-
-import unicodedata
 
 __all__ = ["WindowFile", "prepare_file", "ingest_window", "WINDOW_MAX_FILES", "WINDOW_MAX_BYTES", "SMALL_FILE_BYTES", "NeedsAlone"]
 
