@@ -604,6 +604,18 @@ def render(args, info: dict, r: dict) -> str:
     return "\n".join(lines)
 
 
+# ----------------------------------------------------------------------------- throughput (issue 11)
+def throughput_section() -> str:
+    """The throughput table from ``benchmarks/throughput_results.json``, and the scaling plot redrawn."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import throughput
+    if not throughput.RESULTS.exists():
+        return "Throughput: not measured yet (run benchmarks/throughput.py)."
+    res = json.loads(throughput.RESULTS.read_text())
+    throughput.plot(res, Path(__file__).resolve().parent / "scaling.svg")
+    return throughput.render_table(res)
+
+
 # ----------------------------------------------------------------------------- main
 def parse_args(argv=None):
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
@@ -622,6 +634,12 @@ def parse_args(argv=None):
     p.add_argument("--skip-full-run", action="store_true", help="skip (d): files, takeup ingest, takeup run")
     p.add_argument("--out", type=Path, default=Path(__file__).resolve().parent / "last_results.md",
                    help="where to write the Markdown table (default benchmarks/last_results.md)")
+    p.add_argument("--throughput-only", action="store_true",
+                   help="print only the throughput table (small files, big file vs HMAC floor, run vs naive join, "
+                        "scaling) from benchmarks/throughput_results.json (made by benchmarks/throughput.py) and "
+                        "redraw benchmarks/scaling.svg")
+    p.add_argument("--readme", action="store_true",
+                   help="with --throughput-only: replace the table between the throughput markers of README.md")
     p.add_argument("--child-ingest", nargs=2, metavar=("WAREHOUSE", "FILE"), help=argparse.SUPPRESS)
     return p.parse_args(argv)
 
@@ -631,6 +649,16 @@ def main(argv=None) -> int:
     os.environ["TAKEUP_ID_KEY"] = BENCH_KEY
     if args.child_ingest:
         child_ingest(*args.child_ingest)
+        return 0
+    if args.throughput_only:
+        text = throughput_section()
+        print(text)
+        if args.readme:
+            readme = ROOT / "README.md"
+            body = readme.read_text()
+            start, end = "<!-- throughput:begin -->", "<!-- throughput:end -->"
+            i, j = body.index(start) + len(start), body.index(end)
+            readme.write_text(body[:i] + "\n" + text + "\n" + body[j:])
         return 0
     import duckdb
 
@@ -693,7 +721,7 @@ def main(argv=None) -> int:
         if not args.skip_full_run:
             r["d"] = bench_full_run(data, names, config, scratch, args, est_a)
         r["load_end"] = " ".join(f"{x:.2f}" for x in os.getloadavg())
-        text = render(args, info, r)
+        text = render(args, info, r) + "\n\n" + throughput_section()
         print(text)
         args.out.write_text(text + "\n")
         log(f"written to {args.out}")

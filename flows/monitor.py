@@ -30,7 +30,8 @@ from takeup.flows.runners import make_task_runner
 from takeup.pipeline.run import stages as core
 from takeup.pipeline.run import writer
 from takeup.pipeline.run.abandoned import process_owner
-from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, collect_inputs, new_run_context
+from takeup.pipeline.run.inputs import (RunContext, RunInputs, check_as_of, collect_inputs, new_run_context,
+                                       prepare_state)
 from takeup.pipeline.warehouse import connect
 from takeup.schemas.config import StudyConfig, parse_config
 
@@ -48,6 +49,7 @@ def collect_task(warehouse: str, as_of: str | None, config_json: str | None, flo
                               mode="orchestrated", flow_run_id=flow_run_id)
         writer.start_run(con, ctx, owner)
         try:
+            prepare_state(con, ctx.config)
             return ctx, collect_inputs(con, ctx)
         except BaseException as exc:
             writer.finish_run(con, ctx, "failed", None, {}, f"{type(exc).__name__}: {exc}")

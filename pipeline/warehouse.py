@@ -28,12 +28,15 @@ __all__ = [
     "WarehouseError", "SCHEMA_VERSION", "default_warehouse_path", "init_warehouse", "connect",
     "stored_config", "store_config", "check_key", "all_table_models", "transaction", "private_umask",
     "temp_dir_for", "memory_connection", "connect_waiting", "lock_wait_seconds", "DEFAULT_LOCK_WAIT",
-    "LOCK_WAIT_ENV",
+    "LOCK_WAIT_ENV", "upgrade_to_state",
 ]
 
 #: 2: salted scrypt key check instead of the unsalted fingerprint; length-prefixed pseudonym messages
-#: for new warehouses (older ones keep theirs, recorded as ``pseudonym_encoding``); see check_key
-SCHEMA_VERSION = "2"
+#: for new warehouses (older ones keep theirs, recorded as ``pseudonym_encoding``); see check_key.
+#: 3: ``participant_state`` (one row per assigned participant x outcome, kept up to date at ingestion)
+#: and ``participant_state_batches``; a warehouse of version 2 gets them on its first writable open
+#: (:func:`upgrade_to_state`), record tables unchanged
+SCHEMA_VERSION = "3"
 
 
 
@@ -267,10 +270,33 @@ def connect(path: Path | str, read_only: bool = False, wait: float | None = None
     if not read_only:
         try:
             _create_tables(con)
+            upgrade_to_state(con)
         except BaseException:
             con.close()
             raise
     return con
+
+
+def upgrade_to_state(con: duckdb.DuckDBPyConnection) -> bool:
+    """Schema 2 -> 3: build ``participant_state`` from the stored records and record version 3.
+
+    Runs on the first writable :func:`connect` of an older warehouse (``takeup ingest``,
+    ``takeup run`` or ``takeup init`` on it).  The record tables are not touched, so every
+    stored run reproduces as before.  Returns True when the warehouse was upgraded.
+    """
+    meta = dict(con.execute("SELECT key, value FROM warehouse_meta").fetchall())
+    version = meta.get("schema_version")
+    if version is None or not version.isdigit() or int(version) >= 3:
+        return False
+    from takeup.pipeline.participant_state import basis_for, refresh_state
+    config = stored_config(con) or StudyConfig()
+    refresh_state(con, basis_for(con, config))
+    with transaction(con):
+        con.execute("DELETE FROM warehouse_meta WHERE key = 'schema_version'")
+        con.executemany("INSERT INTO warehouse_meta VALUES (?, ?)", [
+            ("schema_version", SCHEMA_VERSION),
+            (f"upgraded_{version}_to_{SCHEMA_VERSION}_at", datetime.now(timezone.utc).isoformat())])
+    return True
 
 
 def init_warehouse(path: Path | str, config: StudyConfig | None = None) -> tuple[Path, Path | None]:

@@ -34,7 +34,7 @@ __all__ = [
     "RecordKind", "RECORD_KINDS", "ARMS",
     "AssignmentInput", "UptakeInput", "OutcomeInput",
     "AssignmentRow", "AssignmentCovariateRow", "UptakeRow", "OutcomeRow",
-    "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow",
+    "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow", "ParticipantStateRow", "StateBatchRow",
     "INPUT_MODELS", "STORED_MODELS", "STORAGE_TABLES",
 ]
 
@@ -195,6 +195,41 @@ class WarehouseMetaRow(_Strict):
     value: str = Field(description="Fact value.")
 
 
+class ParticipantStateRow(_Strict):
+    """Table `participant_state`: one row per assigned participant x outcome, kept up to date at ingestion.
+
+    Derived from the record tables (it can be rebuilt from them at any time): the
+    assignment, the summary of every uptake report and the outcome value under the
+    follow-up window and rule of the state's basis (`warehouse_meta.state_basis`),
+    with the latest record date and batch receipt time of the participant, so that a
+    run reads it with one scan and recomputes from the records only the participants
+    with records after its cutoff.
+    """
+
+    participant_key: int = Field(description="Participant pseudonym (see `assignments`).",
+                                 json_schema_extra={"sql_type": "UHUGEINT"})
+    site_id: str = Field(description="Site identifier.")
+    cluster_id: Optional[str] = Field(default=None, description="Randomisation cluster.")
+    stratum: Optional[str] = Field(default=None, description="Randomisation stratum.")
+    assigned_on: date = Field(description="Assignment date.")
+    z: int = Field(description="1 = assigned to treatment, 0 = control.")
+    took_up: Optional[bool] = Field(default=None, description="Any uptake report says taken up; null = no report.")
+    first_obs: Optional[date] = Field(default=None, description="Date of the first uptake report.")
+    first_yes: Optional[date] = Field(default=None, description="Date of the first report of uptake.")
+    slot: int = Field(description="Position of `outcome` in the basis's outcome list (0: first, or no outcome).")
+    outcome: Optional[str] = Field(default=None, description="Outcome name (null when the study has none).")
+    y: Optional[float] = Field(default=None, description="Outcome value under the basis's follow-up window and rule.")
+    last_event_on: date = Field(description="Latest date among the participant's records (any kind).")
+    last_received_at: datetime = Field(description="Latest receipt time among the batches of those records.")
+
+
+class StateBatchRow(_Strict):
+    """Table `participant_state_batches`: batches whose records `participant_state` reflects."""
+
+    batch_id: str = Field(description="Batch identifier (see `batches`).")
+    applied_at: datetime = Field(description="When the batch was applied to the state (UTC).")
+
+
 STORED_MODELS: dict[str, type[_Strict]] = {
     "assignment": AssignmentRow,
     "uptake": UptakeRow,
@@ -211,6 +246,8 @@ STORAGE_TABLES: dict[str, type[_Strict]] = {
     "assignment_covariates": AssignmentCovariateRow,
     "uptake_events": UptakeRow,
     "outcome_measurements": OutcomeRow,
+    "participant_state": ParticipantStateRow,
+    "participant_state_batches": StateBatchRow,
 }
 
 #: record kind -> table name

@@ -308,7 +308,7 @@ def test_key_check_is_salted_and_slow_not_a_plain_fingerprint(tmp_path, key_env)
     meta_b = dict(_rows(b, "SELECT key, value FROM warehouse_meta"))
     assert "key_fingerprint" not in meta_a
     assert meta_a["key_check"].startswith("scrypt$") and meta_a["key_check"] != meta_b["key_check"]
-    assert meta_a["schema_version"] == "2" and meta_a["pseudonym_encoding"] == "length_prefixed"
+    assert meta_a["schema_version"] == "3" and meta_a["pseudonym_encoding"] == "length_prefixed"
 
 
 def test_schema_1_warehouse_is_upgraded_and_keeps_its_pseudonyms(tmp_path, key_env):
@@ -322,7 +322,7 @@ def test_schema_1_warehouse_is_upgraded_and_keeps_its_pseudonyms(tmp_path, key_e
     f = write_csv(tmp_path / "a.csv", A_HEADER, "S1,p1,control,2026-01-05")
     assert ingest_paths(path, [f])[0].rows_loaded == 1
     meta = dict(_rows(path, "SELECT key, value FROM warehouse_meta"))
-    assert meta["schema_version"] == "2" and meta["pseudonym_encoding"] == "separator"
+    assert meta["schema_version"] == "3" and meta["pseudonym_encoding"] == "separator"
     assert "key_fingerprint" not in meta and meta["key_check"].startswith("scrypt$")
     # the stored rows keep the encoding the warehouse was built with (RFC 2104 reference, old message)
     expected = int(hmac.new(TEST_KEY.encode(), b"S1\x1fp1", hashlib.sha256).hexdigest()[:32], 16)

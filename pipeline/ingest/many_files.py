@@ -5,7 +5,11 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Callable, Iterable, Sequence
 
+import duckdb
+
 from takeup.pipeline.ingest.batch import BatchReport, IngestError, ingest_file, literal_path  # noqa: F401
+from takeup.pipeline.ingest.file_groups import WINDOW_MAX_BYTES, WINDOW_MAX_FILES, NeedsAlone, WindowFile, ingest_window, prepare_file
+from takeup.pipeline.participant_state import basis_for, refresh_state
 from takeup.pipeline.pseudonym import load_key
 from takeup.pipeline.warehouse import check_key, connect, stored_config
 from takeup.schemas.config import StudyConfig
@@ -35,6 +39,69 @@ def expand_paths(paths: Iterable[Path], exclude: Iterable[Path] = ()) -> list[Pa
     return out
 
 
+def _ingest_in_windows(con, files: list[Path], key, cfg: StudyConfig, kind: str | None,
+                       reports: list[BatchReport], advance, delimiter: str = "auto", encoding: str = "utf-8",
+                       after_commit: Callable[[Path, BatchReport], None] | None = None) -> None:
+    """Every file in order: runs of small files as windows (file_groups), the others alone.
+
+    ``after_commit(path, report)`` follows each file's verdict, in file order, once its batch
+    (or its window's transaction) is committed.
+    """
+    prepared: dict[int, WindowFile | None] = {}
+
+    def prep(i: int) -> WindowFile | None:
+        if i not in prepared:
+            prepared[i] = prepare_file(Path(files[i]), cfg, delimiter=delimiter, encoding=encoding)
+        return prepared[i]
+
+    def done(new: list[tuple[Path, BatchReport]]) -> None:
+        for path, report in new:
+            reports.append(report)
+            if after_commit is not None:
+                after_commit(Path(path), report)
+
+    def _alone(con, f: Path, key, cfg, kind) -> tuple[Path, BatchReport]:
+        try:
+            return f, ingest_file(con, f, key, cfg, kind=kind, delimiter=delimiter, encoding=encoding)
+        except IngestError as exc:
+            return f, BatchReport(file=str(f), status="rejected", message=str(exc))
+
+    i, cap = 0, WINDOW_MAX_FILES
+    while i < len(files):
+        window: list[WindowFile] = []
+        shas: set[str] = set()
+        size = 0
+        while i + len(window) < len(files) and len(window) < cap:
+            wf = prep(i + len(window))
+            if wf is None or wf.sha in shas or (window and size + wf.size > WINDOW_MAX_BYTES):
+                break
+            window.append(wf)
+            shas.add(wf.sha)
+            size += wf.size
+        if window:
+            loaded = {r[0] for r in con.execute(
+                "SELECT DISTINCT sha256 FROM batches WHERE status = 'loaded' AND list_contains($s, sha256)",
+                {"s": [w.sha for w in window]}).fetchall()}
+            first_loaded = next((n for n, w in enumerate(window) if w.sha in loaded), None)
+            if first_loaded is not None:
+                window = window[:first_loaded]     # the file with known content goes alone (duplicate_batch)
+        if len(window) < 2:
+            done([_alone(con, files[i], key, cfg, kind)])
+            advance(1)
+            i, cap = i + 1, WINDOW_MAX_FILES
+            continue
+        try:
+            done([(w.path, r) for w, r in zip(window, ingest_window(con, window, key, cfg, kind), strict=True)])
+        except NeedsAlone as exc:
+            cap = max(exc.position, 1)             # the files before it as a window, then it alone
+            continue
+        except (duckdb.Error, RuntimeError):
+            # not expected: the window was rolled back; each file alone gets its own verdict
+            done([_alone(con, f.path, key, cfg, kind) for f in window])
+        advance(len(window))
+        i, cap = i + len(window), WINDOW_MAX_FILES
+
+
 def ingest_paths(warehouse: Path | str, paths: Sequence[Path | str], kind: str | None = None,
                  progress: bool = False, config: StudyConfig | None = None, delimiter: str = "auto",
                  encoding: str = "utf-8", after_commit: Callable[[Path, BatchReport], None] | None = None,
@@ -46,7 +113,9 @@ def ingest_paths(warehouse: Path | str, paths: Sequence[Path | str], kind: str |
     there (:mod:`takeup.pipeline.ingest.drop_folder`).  ``delimiter`` and ``encoding``
     are passed to :func:`~takeup.pipeline.ingest.batch.ingest_file`.
 
-    Each file is its own atomic batch; a file that cannot be ingested is reported
+    Each file is its own atomic batch; runs of small files are staged, checked and committed
+    together (:mod:`takeup.pipeline.ingest.file_groups`) with the same per-file results as
+    one by one.  A file that cannot be ingested is reported
     as rejected and the others still load.  An infrastructure failure (out of memory,
     disk full, permission denied) is not the file's fault: it stops here with
     :class:`~takeup.pipeline.errors.InfrastructureError`, the files before it stay loaded.
@@ -65,19 +134,19 @@ def ingest_paths(warehouse: Path | str, paths: Sequence[Path | str], kind: str |
             bar.start()
             task = bar.add_task("ingesting", total=len(files))
         try:
-            for f in files:
-                try:
-                    report = ingest_file(con, f, key, cfg, kind=kind, delimiter=delimiter, encoding=encoding)
-                except IngestError as exc:
-                    report = BatchReport(file=str(f), status="rejected", message=str(exc))
-                reports.append(report)
-                if after_commit is not None:
-                    after_commit(Path(f), report)
+            def advance(n: int) -> None:
                 if bar is not None:
-                    bar.advance(task)
+                    bar.advance(task, n)
+
+            _ingest_in_windows(con, files, key, cfg, kind, reports, advance, delimiter=delimiter, encoding=encoding,
+                               after_commit=after_commit)
         finally:
             if bar is not None:
                 bar.stop()
+        # once per set of files: the participants the new batches touch get their state rows
+        # recomputed (a failure before this leaves the batches listed as not applied; the next
+        # ingestion or run applies them)
+        refresh_state(con, basis_for(con, cfg))
         return reports
     finally:
         con.close()

@@ -142,7 +142,7 @@ def _parse_expr(spec: ColumnSpec, raw: str, dtype: str) -> str:
 
 
 def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, ...],
-                     id_expr_sql, also_required: tuple[str, ...] = ()) -> ParsePlan:
+                     id_expr_sql, also_required: tuple[str, ...] = (), passthrough: tuple[str, ...] = ()) -> ParsePlan:
     """Build the parse/check plan for a staged file.
 
     Parameters
@@ -154,6 +154,8 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
     id_expr_sql : callable ``(site_sql, id_sql) -> sql`` giving the pseudonym expression.
     also_required : optional fields the study makes required (``cluster_id`` under cluster
         randomisation): an empty value is quarantined as ``missing_value``.
+    passthrough : stage columns copied as they are beside ``_row`` (``_file`` when many files
+        are staged together).
 
     The generated SQL binds ``$today`` (DATE), ``$earliest`` (DATE, start of the plausible
     window), ``$registry`` (VARCHAR[]; empty = no registry check) and ``$outcomes``
@@ -161,12 +163,12 @@ def build_parse_plan(kind: str, columns: dict[str, str], covariates: tuple[str, 
     """
     specs = columns_of(INPUT_MODELS[kind])
     # inner level: every raw column trimmed once ("__t_<name>"); the outer level parses and checks
-    inner = [f"{_raw_text(c, t)} AS {_q('__t_' + c)}" for c, t in columns.items()]
+    inner = [f"{_raw_text(c, t)} AS {_q('__t_' + c)}" for c, t in columns.items() if c not in passthrough]
 
     def trimmed(col: str) -> str:
         return _q("__t_" + col) if col in columns else "CAST(NULL AS VARCHAR)"
 
-    select: list[str] = ['"_row"']
+    select: list[str] = ['"_row"'] + [_q(c) for c in passthrough]
     checks: list[Check] = []
     value_columns: list[str] = []
     for spec in specs:

@@ -17,16 +17,17 @@ from datetime import date, datetime, timedelta, timezone
 import duckdb
 import pandas as pd
 
+from takeup.pipeline.participant_state import basis_for, refresh_state
 from takeup.pipeline.run.adjusted_sql import AdjustedMoments, adjusted_moments
 from takeup.pipeline.run.strata_sql import collect_strata
 from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, cluster_moments, covariate_cells,
-                                            outcome_names, site_outcome_moments)
+                                            drop_sample, outcome_names, site_outcome_moments)
 from takeup.schemas.config import StudyConfig
 
 from takeup.pipeline.errors import OptionError
 
 __all__ = ["RunContext", "RunInputs", "new_run_context", "collect_inputs", "input_fingerprint", "check_as_of",
-           "AS_OF_MARGIN_DAYS"]
+           "AS_OF_MARGIN_DAYS", "prepare_state"]
 
 #: a cutoff may lie at most this many days after the later of today and the latest record date
 AS_OF_MARGIN_DAYS = 366
@@ -244,6 +245,15 @@ def _previous_sequences(con: duckdb.DuckDBPyConnection, prev_id: str | None) -> 
     return site, pooled
 
 
+def prepare_state(con: duckdb.DuckDBPyConnection, config: StudyConfig) -> str:
+    """Bring ``participant_state`` up to date for ``config`` before a run reads (writable connection).
+
+    Normally a no-op (ingestion keeps it current); after a change of the follow-up settings or
+    outcome list it is rebuilt once.  See :mod:`takeup.pipeline.participant_state`.
+    """
+    return refresh_state(con, basis_for(con, config))
+
+
 def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs:
     """Run every SQL aggregation of the run and return the small frames."""
     config = ctx.config
@@ -270,8 +280,7 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
                                         within_strata=bool(strata.sites))
     finally:
         con.execute("DROP TABLE IF EXISTS _strata")
-        con.execute("DROP TABLE IF EXISTS _sample")
-        con.execute("DROP TABLE IF EXISTS _participants")
+        drop_sample(con)
     return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,
                      covariate_cells=cells, cohort_counts=cohort, calendar_counts=calendar,
                      site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,

@@ -36,10 +36,11 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from takeup.pipeline.participant_state import StateBasis, state_is_current
 from takeup.pipeline.stats.estimators.moments import ArmMoments, ClusterMoments, SiteMoments
 from takeup.schemas.config import StudyConfig
 
-__all__ = ["SampleSpec", "build_participants", "site_outcome_moments", "cluster_moments", "covariate_cells",
+__all__ = ["SampleSpec", "build_participants", "drop_sample", "site_outcome_moments", "cluster_moments", "covariate_cells",
            "outcome_names", "MomentTable", "moments_for_outcome"]
 
 
@@ -81,8 +82,12 @@ def _batch_filter(con: duckdb.DuckDBPyConnection, spec: SampleSpec, alias: str) 
             f"AND received_at <= $data_cutoff)")
 
 
-def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcomes: list[str]) -> None:
-    """Materialise the temp tables of the analysis sample.
+def _build_from_records(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcomes: list[str],
+                        keys: str | None = None, participants: str = "_participants", sample: str = "_sample") -> None:
+    """Materialise the temp tables of the analysis sample from the record tables (the join).
+
+    ``keys`` (a table of ``participant_key``) restricts it to those participants; ``participants``
+    and ``sample`` name the tables made.
 
     ``_participants``: one row per assigned participant (site_id, participant_key, cluster_id,
     assigned_on, z, d, uptake_observed, in_uptake (enters the uptake moments under the study's
@@ -96,12 +101,13 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
     """
     agg = _AGG[spec.rule]
     fa, fu, fo = (_batch_filter(con, spec, t) for t in ("t", "t", "t"))
+    only = f" AND t.participant_key IN (SELECT participant_key FROM {keys})" if keys else ""
     con.execute(f"""
-        CREATE OR REPLACE TEMP TABLE _participants AS
+        CREATE OR REPLACE TEMP TABLE {participants} AS
         WITH u AS (
             SELECT t.participant_key, bool_or(t.took_up) AS took_up, min(t.observed_on) AS first_obs,
                    min(t.observed_on) FILTER (WHERE t.took_up) AS first_yes
-            FROM uptake_events t WHERE t.observed_on <= $as_of{fu}
+            FROM uptake_events t WHERE t.observed_on <= $as_of{fu}{only}
             GROUP BY t.participant_key
         )
         SELECT t.site_id, t.participant_key, t.cluster_id, t.assigned_on,
@@ -113,19 +119,19 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
                CASE WHEN u.first_obs IS NOT NULL THEN greatest(u.first_obs, t.assigned_on) END AS first_obs,
                CASE WHEN u.first_yes IS NOT NULL THEN greatest(u.first_yes, t.assigned_on) END AS first_yes
         FROM assignments t LEFT JOIN u USING (participant_key)
-        WHERE t.assigned_on <= $as_of{fa}
+        WHERE t.assigned_on <= $as_of{fa}{only}
     """, {**(spec.params() if fa or fu else {"as_of": spec.as_of}),
           "complete_case": spec.uptake_missing == "complete_case", "min_days": spec.min_days})
     if not outcomes:
-        con.execute("CREATE OR REPLACE TEMP TABLE _sample AS SELECT site_id, participant_key, cluster_id, z, d, "
+        con.execute(f"CREATE OR REPLACE TEMP TABLE {sample} AS SELECT site_id, participant_key, cluster_id, z, d, "
                     "uptake_observed, in_uptake, outcome_due, CAST(NULL AS VARCHAR) AS outcome, "
-                    "CAST(NULL AS DOUBLE) AS y FROM _participants WHERE FALSE")
+                    f"CAST(NULL AS DOUBLE) AS y FROM {participants} WHERE FALSE")
         return
     con.execute(f"""
-        CREATE OR REPLACE TEMP TABLE _sample AS
+        CREATE OR REPLACE TEMP TABLE {sample} AS
         WITH o AS (
             SELECT t.participant_key, t.outcome, {agg.replace('m.', 't.')} AS y
-            FROM outcome_measurements t JOIN _participants a USING (participant_key)
+            FROM outcome_measurements t JOIN {participants} a USING (participant_key)
             WHERE t.measured_on <= $as_of{fo}
               AND date_diff('day', a.assigned_on, t.measured_on) BETWEEN $min_days AND $max_days
               AND list_contains($outcomes, t.outcome)
@@ -133,10 +139,84 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
         ), names AS (SELECT unnest($outcomes) AS outcome)
         SELECT a.site_id, a.participant_key, a.cluster_id, a.z, a.d, a.uptake_observed, a.in_uptake,
                a.outcome_due, names.outcome, o.y
-        FROM _participants a CROSS JOIN names
+        FROM {participants} a CROSS JOIN names
         LEFT JOIN o ON o.participant_key = a.participant_key AND o.outcome = names.outcome
     """, {**(spec.params() if fo else {"as_of": spec.as_of}), "min_days": spec.min_days,
           "max_days": spec.max_days, "outcomes": list(outcomes)})
+
+
+def drop_sample(con: duckdb.DuckDBPyConnection) -> None:
+    """Drop the run's ``_sample`` / ``_participants`` (views or tables) and their helpers."""
+    kinds = dict(con.execute("SELECT table_name, table_type FROM information_schema.tables "
+                             "WHERE table_catalog = 'temp'").fetchall())
+    for name in ("_sample", "_participants", "_sample_re", "_participants_re", "_inexact", "_cut"):
+        if name in kinds:
+            con.execute(f"DROP {'VIEW' if kinds[name] == 'VIEW' else 'TABLE'} {name}")
+
+
+#: when more than this share of the assigned participants have records after the cutoff, the
+#: sample is built from the records directly rather than from the state plus a recomputation
+RECOMPUTE_SHARE = 0.5
+
+
+def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcomes: list[str]) -> str:
+    """Make the temp relations of the analysis sample; returns ``"state"``, ``"state+records"`` or ``"records"``.
+
+    ``_participants``: one row per assigned participant (site_id, participant_key, cluster_id,
+    assigned_on, z, d, uptake_observed, in_uptake (enters the uptake moments under the study's
+    ``uptake_missing`` rule), outcome_due (assigned at least ``min_days`` before the cutoff),
+    first_obs, first_yes — the first uptake report and the first report of uptake, for the
+    calendar trends).
+    ``_sample``: one row per assigned participant x outcome (site_id, participant_key, cluster_id, z, d,
+    uptake_observed, in_uptake, outcome_due, outcome, y).
+
+    When ``participant_state`` is current for the run's follow-up basis, they are views over
+    it: the participants whose records all lie within the cutoffs are read from the state (one
+    scan), the others — records dated after ``as_of`` or received after ``data_cutoff`` — are
+    recomputed from the record tables and appended.  Otherwise everything is computed
+    from the record tables (the same rows either way).
+    """
+    drop_sample(con)
+    basis = StateBasis(spec.min_days, spec.max_days, spec.rule, tuple(outcomes))
+    if not state_is_current(con, basis):
+        _build_from_records(con, spec, outcomes)
+        return "records"
+    con.execute("CREATE TEMP TABLE _cut AS SELECT CAST($as_of AS DATE) AS as_of, "
+                "CAST($data_cutoff AS TIMESTAMP) AS data_cutoff, CAST($cc AS BOOLEAN) AS complete_case, "
+                "CAST($min_days AS INTEGER) AS min_days",
+                {**spec.params(), "cc": spec.uptake_missing == "complete_case", "min_days": spec.min_days})
+    con.execute("CREATE TEMP TABLE _inexact AS SELECT s.participant_key FROM participant_state s, _cut c "
+                "WHERE s.slot = 0 AND s.assigned_on <= c.as_of "
+                "AND (s.last_event_on > c.as_of OR s.last_received_at > c.data_cutoff)")
+    n_inexact, n_assigned = con.execute(
+        "SELECT (SELECT count(*) FROM _inexact), (SELECT count(*) FROM participant_state s, _cut c "
+        "WHERE s.slot = 0 AND s.assigned_on <= c.as_of)").fetchone()
+    if n_inexact > RECOMPUTE_SHARE * n_assigned:
+        drop_sample(con)
+        _build_from_records(con, spec, outcomes)
+        return "records"
+    exact = ("FROM participant_state s, _cut c WHERE s.last_event_on <= c.as_of "
+             "AND s.last_received_at <= c.data_cutoff")
+    common = ("CASE WHEN coalesce(s.took_up, FALSE) THEN 1.0 ELSE 0.0 END AS d, "
+              "s.took_up IS NOT NULL AS uptake_observed, (s.took_up IS NOT NULL OR NOT c.complete_case) AS in_uptake, "
+              "date_diff('day', s.assigned_on, c.as_of) >= c.min_days AS outcome_due")
+    participants = ("SELECT s.site_id, s.participant_key, s.cluster_id, s.assigned_on, CAST(s.z AS INTEGER) AS z, "
+                    f"{common}, "
+                    "CASE WHEN s.first_obs IS NOT NULL THEN greatest(s.first_obs, s.assigned_on) END AS first_obs, "
+                    "CASE WHEN s.first_yes IS NOT NULL THEN greatest(s.first_yes, s.assigned_on) END AS first_yes "
+                    f"{exact} AND s.slot = 0")
+    sample = ("SELECT s.site_id, s.participant_key, s.cluster_id, CAST(s.z AS INTEGER) AS z, "
+              f"{common}, s.outcome, s.y {exact}" + ("" if outcomes else " AND FALSE"))
+    mode = "state"
+    if n_inexact:
+        _build_from_records(con, spec, outcomes, keys="_inexact", participants="_participants_re",
+                            sample="_sample_re")
+        participants += " UNION ALL SELECT * FROM _participants_re"
+        sample += " UNION ALL SELECT * FROM _sample_re"
+        mode = "state+records"
+    con.execute(f"CREATE TEMP VIEW _participants AS {participants}")
+    con.execute(f"CREATE TEMP VIEW _sample AS {sample}")
+    return mode
 
 
 def site_outcome_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:

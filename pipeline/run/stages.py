@@ -35,7 +35,8 @@ from typing import Any, Callable, Iterator, Protocol, Sequence
 import duckdb
 
 from takeup.pipeline.run.alert_rules import compute_alerts
-from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, collect_inputs, new_run_context
+from takeup.pipeline.run.inputs import (RunContext, RunInputs, check_as_of, collect_inputs, new_run_context,
+                                       prepare_state)
 from takeup.pipeline.run.pooled_rows import pool_outcome
 from takeup.pipeline.run.sequence_rows import add_sequences, precision_rows
 from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
@@ -221,6 +222,7 @@ def run_monitoring(warehouse: Path | str, as_of: date | None = None, config: Stu
         inputs = None
         try:
             with timed(timings, "collect_inputs"):
+                prepare_state(con, ctx.config)
                 inputs = collect_inputs(con, ctx)
             results = compute_all(inputs, ctx, timings)
             with timed(timings, "write"):
