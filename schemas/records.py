@@ -34,7 +34,7 @@ __all__ = [
     "RecordKind", "RECORD_KINDS", "ARMS",
     "AssignmentInput", "UptakeInput", "OutcomeInput",
     "AssignmentRow", "AssignmentCovariateRow", "UptakeRow", "OutcomeRow",
-    "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow",
+    "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow", "MomentsPackageRow",
     "INPUT_MODELS", "STORED_MODELS", "STORAGE_TABLES",
 ]
 
@@ -188,6 +188,19 @@ class WarehouseMetaRow(_Strict):
     value: str = Field(description="Fact value.")
 
 
+class MomentsPackageRow(_Strict):
+    """Table `moments_packages`: the moments packages central runs were computed from (for `reproduce`)."""
+
+    package_sha256: str = Field(description="SHA-256 of the package's manifest (which holds every part's hash).")
+    stored_at: datetime = Field(description="When the package was stored (UTC).")
+    study_id: str = Field(description="Study of the package.")
+    as_of: date = Field(description="Cutoff date of the package's aggregates.")
+    file_name: str = Field(description="File name the package was read from.")
+    manifest_json: str = Field(description="The package's manifest.")
+    content: bytes = Field(description="The package file itself (aggregates only; confidential).",
+                           json_schema_extra={"sql_type": "BLOB"})
+
+
 STORED_MODELS: dict[str, type[_Strict]] = {
     "assignment": AssignmentRow,
     "uptake": UptakeRow,
@@ -204,6 +217,7 @@ STORAGE_TABLES: dict[str, type[_Strict]] = {
     "assignment_covariates": AssignmentCovariateRow,
     "uptake_events": UptakeRow,
     "outcome_measurements": OutcomeRow,
+    "moments_packages": MomentsPackageRow,
 }
 
 #: record kind -> table name

@@ -43,6 +43,9 @@ class RunRow(_Result):
     n_sites: int = Field(description="Sites with at least one assignment as of the cutoff.")
     timings_json: Optional[str] = Field(default=None, description="Seconds per stage, JSON.")
     message: Optional[str] = Field(default=None, description="Errors or warnings of the run.")
+    moments_sources: Optional[str] = Field(
+        default=None, description="Runs pooled from moments packages or shards: JSON list of the sources, each with "
+                                  "its package SHA-256 (or shard path), input fingerprint and sites; null otherwise.")
 
 
 class SiteEstimateRow(_Result):

@@ -36,6 +36,7 @@ import duckdb
 
 from takeup.pipeline.run.alert_rules import compute_alerts
 from takeup.pipeline.run.inputs import RunContext, RunInputs, check_as_of, collect_inputs, new_run_context
+from takeup.pipeline.run.pooled_inputs import gather_inputs, record_sources
 from takeup.pipeline.run.pooled_rows import pool_outcome
 from takeup.pipeline.run.sequence_rows import add_sequences, precision_rows
 from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
@@ -203,7 +204,9 @@ def run_monitoring(warehouse: Path | str, as_of: date | None = None, config: Stu
         inputs = None
         try:
             with timed(timings, "collect_inputs"):
-                inputs = collect_inputs(con, ctx)
+                inputs, sources = gather_inputs(con, ctx, warehouse)   # one warehouse, or the study's shards
+            if sources is not None:
+                record_sources(con, ctx, sources)
             results = compute_all(inputs, ctx, timings)
             with timed(timings, "write"):
                 counts = write_results(con, ctx, results)

@@ -106,8 +106,9 @@ def write_results(con: duckdb.DuckDBPyConnection, ctx: RunContext, results: RunR
 
 def start_run(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> None:
     store_config(con, ctx.config)
-    con.execute("INSERT INTO runs VALUES ($run, $flow, $mode, $as_of, $start, NULL, 'running', $ver, $cfg, '', 0, 0, "
-                "NULL, NULL)", {"run": ctx.run_id, "flow": ctx.flow_run_id, "mode": ctx.mode, "as_of": ctx.as_of,
+    con.execute("INSERT INTO runs (run_id, flow_run_id, mode, as_of, started_at, finished_at, status, code_version, "
+                "config_hash, input_fingerprint, n_batches, n_sites, timings_json, message) "
+                "VALUES ($run, $flow, $mode, $as_of, $start, NULL, 'running', $ver, $cfg, '', 0, 0, NULL, NULL)", {"run": ctx.run_id, "flow": ctx.flow_run_id, "mode": ctx.mode, "as_of": ctx.as_of,
                                 "start": ctx.started_at, "ver": code_version(), "cfg": ctx.config_hash})
 
 
