@@ -72,8 +72,12 @@ def reproduce_run(warehouse: Path | str, run_id: str, tolerance: float = 1e-9) -
     """Recompute ``run_id`` without writing anything and compare it with the stored tables."""
     con = connect(warehouse, read_only=True)
     try:
+        # moments_sources is absent from a warehouse last written by an older version
+        pooled = con.execute("SELECT count(*) FROM information_schema.columns WHERE table_name = 'runs' "
+                             "AND column_name = 'moments_sources'").fetchone()[0]
         row = con.execute("SELECT as_of, started_at, config_hash, input_fingerprint, mode, flow_run_id, status, "
-                          "moments_sources FROM runs WHERE run_id = $r", {"r": run_id}).fetchall()
+                          f"{'moments_sources' if pooled else 'NULL'} FROM runs WHERE run_id = $r",
+                          {"r": run_id}).fetchall()
         if not row:
             raise ReproduceError(f"no run {run_id!r} in {warehouse}")
         as_of, started, cfg_hash, fingerprint, mode, flow_run_id, status, sources = row[0]
