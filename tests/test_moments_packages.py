@@ -274,6 +274,8 @@ def _rezip(src: Path, dst: Path, change: dict[str, bytes]) -> Path:
     with zipfile.ZipFile(src) as zin, zipfile.ZipFile(dst, "w") as zout:
         for n in zin.namelist():
             zout.writestr(n, change.get(n, zin.read(n)))
+        for n in set(change) - set(zin.namelist()):
+            zout.writestr(n, change[n])
     return dst
 
 
@@ -304,7 +306,8 @@ def test_other_study_or_config_is_refused_with_the_difference_named(regions, tmp
         update={"max_days": 200})})
     central = tmp_path / "c.duckdb"
     init_warehouse(central, other)
-    with pytest.raises(PackageError, match=r"follow_up\.max_days is 365 there and 200 here") as e:
+    days = regions["config"].follow_up.max_days
+    with pytest.raises(PackageError, match=rf"follow_up\.max_days is {days} there and 200 here") as e:
         run_from_packages(central, paths)
     assert "another configuration" in str(e.value)
     study = tmp_path / "s.duckdb"
