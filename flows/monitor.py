@@ -9,7 +9,10 @@ Collecting the inputs and writing the results touch the warehouse: they wait for
 its lock (up to ``--wait`` / ``$TAKEUP_LOCK_WAIT`` seconds, see
 :func:`takeup.pipeline.warehouse.connect_waiting`) rather than retry.  The ``runs``
 row is owned by the flow's process, so a killed flow's run is marked ``abandoned``
-by the next run.
+by the next run.  A study configured with shards (``[[shards]]``) collects each
+shard's aggregates as its own task -- on a Dask worker, which opens the shard
+read-only and returns the aggregate frames -- and pools them centrally
+(:mod:`takeup.pipeline.run.pooled_inputs`).
 A finished run is then published to the study's [publish] targets (a failed
 publication is recorded, never fails the flow).
 """
@@ -21,15 +24,16 @@ from pathlib import Path
 from typing import Any, Sequence
 
 import takeup.flows  # noqa: F401  (Prefect defaults)
-from prefect import flow, task
+from prefect import flow, task, unmapped
 from prefect.cache_policies import NO_CACHE
 from prefect.runtime import flow_run as runtime_flow_run
 
 from takeup.flows.api_server import check_configured_api
 from takeup.flows.runners import make_task_runner
 from takeup.pipeline.run import stages as core
-from takeup.pipeline.run import writer
+from takeup.pipeline.run import pooled_inputs, writer
 from takeup.pipeline.run.abandoned import process_owner
+from takeup.pipeline.run.moments_package import MomentsPackage
 from takeup.pipeline.run.inputs import (RunContext, RunInputs, check_as_of, collect_inputs, new_run_context,
                                        prepare_state)
 from takeup.pipeline.warehouse import connect
@@ -54,6 +58,66 @@ def collect_task(warehouse: str, as_of: str | None, config_json: str | None, flo
         except BaseException as exc:
             writer.finish_run(con, ctx, "failed", None, {}, f"{type(exc).__name__}: {exc}")
             raise
+    finally:
+        con.close()
+
+
+@task(name="start-run", cache_policy=NO_CACHE)
+def start_task(warehouse: str, as_of: str | None, config: StudyConfig, flow_run_id: str | None,
+               owner: dict | None = None) -> RunContext:
+    con = connect(warehouse)
+    try:
+        ctx = new_run_context(config, as_of=date.fromisoformat(as_of) if as_of else None,
+                              mode="orchestrated", flow_run_id=flow_run_id)
+        pooled_inputs.refuse_local_records(con, warehouse, "a run of a sharded study")
+        writer.start_run(con, ctx, owner)
+        return ctx
+    finally:
+        con.close()
+
+
+@task(name="collect-shard", cache_policy=NO_CACHE)
+def shard_task(path: str, label: str, ctx: RunContext) -> MomentsPackage:
+    """One shard's aggregates, computed where the task runs (a Dask worker opens the shard read-only)."""
+    return pooled_inputs.collect_shard(path, label, ctx)
+
+
+@task(name="pool-shards", cache_policy=NO_CACHE)
+def pool_task(warehouse: str, ctx: RunContext, packages: list[MomentsPackage]) -> RunInputs:
+    con = connect(warehouse)
+    try:
+        inputs = pooled_inputs.pool(con, ctx, packages)
+        pooled_inputs.record_sources(con, ctx, pooled_inputs.sources_of(packages, shards=True))
+        return inputs
+    finally:
+        con.close()
+
+
+def _collect_sharded(warehouse: str, as_of: str | None, config: StudyConfig, flow_run_id: str | None
+                     ) -> tuple[RunContext, RunInputs]:
+    """Start the run, collect every shard as its own task (in parallel on the runner), pool them centrally."""
+    ctx = start_task(warehouse, as_of, config, flow_run_id, process_owner())
+    try:
+        locations = pooled_inputs.shard_locations(config, warehouse)
+        futures = shard_task.map([p for _, p in locations], [label for label, _ in locations], ctx=unmapped(ctx))
+        packages = [f.result() for f in futures]
+        return ctx, pool_task(warehouse, ctx, packages)
+    except BaseException as exc:
+        con = connect(warehouse)
+        try:
+            writer.finish_run(con, ctx, "failed", None, {}, f"{type(exc).__name__}: {exc}")
+        finally:
+            con.close()
+        raise
+
+
+def _flow_config(warehouse: str, config_json: str | None) -> StudyConfig:
+    import json
+    if config_json:
+        return parse_config(json.loads(config_json))
+    con = connect(warehouse, read_only=True)
+    try:
+        return core.resolve_config(con, None)
     finally:
         con.close()
 
@@ -109,8 +173,12 @@ def monitor_flow(warehouse: str, as_of: str | None = None, config_json: str | No
     """Compute and write one monitoring run (see :mod:`takeup.pipeline.run.stages`)."""
     flow_run_id = str(runtime_flow_run.id) if runtime_flow_run.id else None
     timings: dict = {}
+    config = _flow_config(warehouse, config_json)
     with core.timed(timings, "collect_inputs"):
-        ctx, inputs = collect_task(warehouse, as_of, config_json, flow_run_id, process_owner())
+        if config.shards:
+            ctx, inputs = _collect_sharded(warehouse, as_of, config, flow_run_id)
+        else:
+            ctx, inputs = collect_task(warehouse, as_of, config_json, flow_run_id, process_owner())
     try:
         stages = core.STAGES
         results = core.compute_all(inputs, ctx, timings, call=AsTasks(stages), stages=stages)

@@ -135,7 +135,23 @@ def build_parser() -> argparse.ArgumentParser:
     _warehouse_arg(p)
     p.add_argument("--as-of", type=_date, help="cutoff date (default: today)")
     p.add_argument("--config", type=Path, help="study configuration (TOML); default: the stored one")
+    p.add_argument("--from-moments", nargs="+", type=Path, metavar="FILE|DIR", default=None,
+                   help="compute the run from moments packages (files, or directories of *.zip packages) made by "
+                        "'takeup moments' in other warehouses; each site must be in exactly one package")
     _orchestration_args(p)
+
+    p = sub.add_parser("moments", help="write this warehouse's aggregates as a moments package",
+                       description="Write every aggregate a run needs from this warehouse (sums per site x outcome x "
+                                   "arm, clusters, covariate cells, cohort counts, site activity, the covariate-"
+                                   "adjusted sums) into one ZIP file with a manifest, for a central run "
+                                   "('takeup run --from-moments'). No participant identifier or participant-level "
+                                   "value; confidential all the same (cells are not suppressed).")
+    _warehouse_arg(p)
+    p.add_argument("--as-of", type=_date, required=True, help="cutoff date (every package of a run uses the same)")
+    p.add_argument("--out", type=Path, required=True, help="package file to write (e.g. north.zip)")
+    p.add_argument("--config", type=Path, help="study configuration (TOML); default: the stored one")
+    p.add_argument("--force", action="store_true", help="replace an existing OUT")
+    _mode_arg(p)
 
     p = sub.add_parser("reproduce", help="recompute a stored run and compare",
                        description="Recompute a run from its run_id (same as-of date, configuration, input batches "
@@ -445,9 +461,38 @@ def _print_summary(s) -> None:
     print(f"  compute time {total:.2f} s" + (f"; {s.message}" if s.message else ""))
 
 
+def cmd_moments(args) -> int:
+    from takeup.pipeline.run.moments_package import CONFIDENTIALITY
+    from takeup.pipeline.run.pooled_inputs import write_warehouse_package
+    from takeup.schemas.config import load_config
+    config = load_config(args.config) if args.config else None
+    sha, pkg = write_warehouse_package(_warehouse(args), args.as_of, args.out, config=config, mode=args.mode,
+                                       force=args.force)
+    agg = pkg.aggregates
+    print(f"moments package: {args.out} (SHA-256 {sha})")
+    print(f"  study {pkg.manifest['study_id']}, as of {args.as_of}, {len(agg.sites)} site(s), "
+          f"{agg.n_batches} batch(es), outcomes {', '.join(agg.outcomes) or 'none'}")
+    print(f"  {CONFIDENTIALITY}")
+    return EXIT_OK
+
+
 def cmd_run(args) -> int:
     from datetime import datetime, timezone
     t0 = datetime.now(timezone.utc).replace(tzinfo=None)
+    if args.from_moments is not None:
+        if args.orchestrated or args.runner or args.dask_address:
+            raise UsageError("--from-moments runs in process (reading packages is light); drop --orchestrated, "
+                             "--runner and --dask-address")
+        from takeup.pipeline.run.central_run import run_from_packages
+        from takeup.schemas.config import load_config
+        summary = run_from_packages(_warehouse(args), args.from_moments, as_of=args.as_of,
+                                    config=load_config(args.config) if args.config else None)
+        _print_summary(summary)
+        print(f"  pooled from {len(args.from_moments)} package argument(s); packages stored in "
+              f"{_warehouse(args)} (table moments_packages) for 'takeup reproduce'")
+        if summary.status != "ok":
+            return EXIT_DATA
+        return _publish_after_run(_warehouse(args), t0, False, args.quiet)
     summary = _run(_warehouse(args), args.as_of, args.config, args.orchestrated, args.runner,
                    args.dask_address, args.quiet)
     _print_summary(summary)
@@ -709,7 +754,8 @@ def cmd_api_server(args) -> int:
                 process.kill()
 
 
-COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd_run, "runs": cmd_runs,
+COMMANDS = {"init": cmd_init, "ingest": cmd_ingest, "demo": cmd_demo, "run": cmd_run, "moments": cmd_moments,
+            "runs": cmd_runs,
             "publish": cmd_publish,
             "alerts": cmd_alerts, "reproduce": cmd_reproduce, "export": cmd_export, "report": cmd_report, "serve": cmd_serve,
             "api-server": cmd_api_server}

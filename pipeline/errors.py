@@ -5,8 +5,8 @@ from __future__ import annotations
 import errno
 
 __all__ = ["WarehouseError", "WarehouseBusyError", "IngestError", "ExportError", "ReportError", "PublishError",
-           "ReproduceError", "RunnerError",
-           "OptionError", "InfrastructureError", "infrastructure_problem"]
+           "ReproduceError", "RunnerError", "OptionError", "PackageError", "InfrastructureError",
+           "infrastructure_problem"]
 
 
 class WarehouseError(RuntimeError):
@@ -43,6 +43,10 @@ class RunnerError(ValueError):
 
 class OptionError(ValueError):
     """A command option with a value outside what is accepted (usage error), e.g. ``--as-of`` out of range."""
+
+
+class PackageError(OptionError):
+    """A moments package or shard that cannot be used: unreadable, altered, or not matching the run (usage error)."""
 
 
 class InfrastructureError(RuntimeError):

@@ -26,6 +26,7 @@ from takeup.schemas.records import ARMS
 __all__ = [
     "ConfigError", "StudyConfig", "OutcomeSpec", "SiteSpec", "FollowUp", "AlertThresholds",
     "EstimationSettings", "TrendSettings", "ScheduleSettings", "ExecutionSettings", "DateWindow", "PublishSettings",
+    "ShardSpec",
     "load_config", "parse_config", "nearest_name",
 ]
 
@@ -261,6 +262,15 @@ class ExecutionSettings(_Cfg):
     dask_address: Optional[str] = Field(default=None, description="tcp://HOST:PORT of an existing Dask scheduler.")
 
 
+class ShardSpec(_Cfg):
+    """One shard warehouse of a study whose sites are spread over several warehouses."""
+
+    path: str = Field(min_length=1, description="Path of the shard's warehouse file, on a filesystem every worker "
+                                                "can read; a relative path is taken from the directory of the "
+                                                "warehouse that stores the results.")
+    name: Optional[str] = Field(default=None, description="Label in messages (default: the path).")
+
+
 class SequentialSettings(_Cfg):
     """Anytime-valid intervals across weekly looks (Waudby-Smith et al. 2024; Howard et al. 2021)."""
 
@@ -350,6 +360,9 @@ class StudyConfig(_Cfg):
     planning: PlanningSettings = PlanningSettings()
     dates: DateWindow = DateWindow()
     publish: PublishSettings = PublishSettings()
+    shards: tuple[ShardSpec, ...] = Field(
+        default=(), description="Shard warehouses holding the study's records, each site in exactly one; a run "
+                                "pools their aggregates (on Dask workers with --runner dask).")
 
     _alloc = field_validator("allocation")(classmethod(lambda cls, v: _check_allocation(v)))
 
@@ -381,6 +394,10 @@ class StudyConfig(_Cfg):
         if len(set(ids)) != len(ids):
             dup = next(i for i in ids if ids.count(i) > 1)
             raise ValueError(f"site {dup!r} appears twice in the registry")
+        paths = [s.path for s in self.shards]
+        if len(set(paths)) != len(paths):
+            dup = next(p for p in paths if paths.count(p) > 1)
+            raise ValueError(f"shard path {dup!r} appears twice")
         return self
 
     # ----------------------------------------------------------------- helpers

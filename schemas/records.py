@@ -35,6 +35,7 @@ __all__ = [
     "AssignmentInput", "UptakeInput", "OutcomeInput",
     "AssignmentRow", "AssignmentCovariateRow", "UptakeRow", "OutcomeRow",
     "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow", "ParticipantStateRow", "StateBatchRow",
+    "MomentsPackageRow",
     "INPUT_MODELS", "STORED_MODELS", "STORAGE_TABLES",
 ]
 
@@ -230,6 +231,19 @@ class StateBatchRow(_Strict):
     applied_at: datetime = Field(description="When the batch was applied to the state (UTC).")
 
 
+class MomentsPackageRow(_Strict):
+    """Table `moments_packages`: the moments packages central runs were computed from (for `reproduce`)."""
+
+    package_sha256: str = Field(description="SHA-256 of the package's manifest (which holds every part's hash).")
+    stored_at: datetime = Field(description="When the package was stored (UTC).")
+    study_id: str = Field(description="Study of the package.")
+    as_of: date = Field(description="Cutoff date of the package's aggregates.")
+    file_name: str = Field(description="File name the package was read from.")
+    manifest_json: str = Field(description="The package's manifest.")
+    content: bytes = Field(description="The package file itself (aggregates only; confidential).",
+                           json_schema_extra={"sql_type": "BLOB"})
+
+
 STORED_MODELS: dict[str, type[_Strict]] = {
     "assignment": AssignmentRow,
     "uptake": UptakeRow,
@@ -248,6 +262,7 @@ STORAGE_TABLES: dict[str, type[_Strict]] = {
     "outcome_measurements": OutcomeRow,
     "participant_state": ParticipantStateRow,
     "participant_state_batches": StateBatchRow,
+    "moments_packages": MomentsPackageRow,
 }
 
 #: record kind -> table name

@@ -46,6 +46,9 @@ class RunRow(_Result):
     timings_json: Optional[str] = Field(default=None, description="Seconds per stage, JSON (while the run is "
                                         "`running`: the process that owns it).")
     message: Optional[str] = Field(default=None, description="Errors or warnings of the run.")
+    moments_sources: Optional[str] = Field(
+        default=None, description="Runs pooled from moments packages or shards: JSON list of the sources, each with "
+                                  "its package SHA-256 (or shard path), input fingerprint and sites; null otherwise.")
 
 
 class SiteEstimateRow(_Result):

@@ -183,3 +183,58 @@ def test_serve_once_registers_scheduled_deployment(prefect_api, small_warehouse,
     assert {d.name for d in deps} == {"flowtest-monitor", "flowtest-ingest"}
     for d in deps:
         assert d.schedules and d.schedules[0].schedule.cron == "15 7 * * 2"
+
+
+def test_shards_on_dask_workers_equal_one_warehouse(prefect_api, small_warehouse, tmp_path, monkeypatch):
+    """A study in two shard warehouses, each collected on a Dask worker and pooled: the same tables as one."""
+    import json
+    from concurrent.futures import ThreadPoolExecutor
+    distributed = pytest.importorskip("distributed")
+    from takeup.flows.monitor import run_orchestrated
+    from takeup.pipeline.ingest.many_files import ingest_paths
+    from takeup.pipeline.run.reproduce import reproduce_run
+    from takeup.pipeline.run.stages import run_monitoring
+    from takeup.pipeline.warehouse import connect, init_warehouse, stored_config
+    from takeup.schemas.config import parse_config
+    monkeypatch.setenv("TAKEUP_ID_KEY", TEST_KEY)
+    con = connect(small_warehouse, read_only=True)
+    cfg = stored_config(con)
+    con.close()
+    src = tmp_path / "src"
+    src.mkdir()
+    files = _site_files(src)                      # the small study's files (same seed)
+    shard_sites = {"a": {"S1", "S2", "S3"}, "b": {"S4", "S5", "S6"}}
+    shard_files = {}
+    for name, sites in shard_sites.items():
+        d = tmp_path / f"shard_{name}"
+        d.mkdir()
+        shard_files[name] = []
+        for f in files:
+            frame = pd.read_csv(f, dtype=str)
+            out = d / f.name
+            frame[frame.site_id.isin(sites)].to_csv(out, index=False)
+            shard_files[name].append(out)
+        init_warehouse(tmp_path / f"{name}.duckdb", cfg)
+
+    def ingest(name):                             # one writer per shard, the shards in parallel
+        return ingest_paths(tmp_path / f"{name}.duckdb", shard_files[name])
+
+    with ThreadPoolExecutor(2) as pool:
+        reports = list(pool.map(ingest, sorted(shard_sites)))
+    assert all(r.status == "loaded" for rs in reports for r in rs)
+    sharded = parse_config({**json.loads(cfg.canonical_json()),
+                            "shards": [{"path": "a.duckdb", "name": "a"}, {"path": "b.duckdb", "name": "b"}]})
+    central = tmp_path / "central.duckdb"
+    init_warehouse(central, sharded)
+    one = run_monitoring(small_warehouse, as_of=AS_OF)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster:
+        on_dask = run_orchestrated(central, as_of=AS_OF, runner="dask", dask_address=cluster.scheduler_address)
+    assert on_dask.status == "ok" and on_dask.n_sites == 6
+    _assert_same(_tables(small_warehouse, one.run_id), _tables(central, on_dask.run_id))
+    con = duckdb.connect(str(central), read_only=True)
+    sources = json.loads(con.execute("SELECT moments_sources FROM runs WHERE run_id = $r",
+                                     {"r": on_dask.run_id}).fetchone()[0])
+    con.close()
+    assert [s["shard"] for s in sources] == ["a", "b"] and [len(s["sites"]) for s in sources] == [3, 3]
+    assert reproduce_run(central, on_dask.run_id).identical

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import hashlib
 import secrets
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import date, datetime, timedelta, timezone
 
 import duckdb
@@ -26,7 +26,8 @@ from takeup.schemas.config import StudyConfig
 
 from takeup.pipeline.errors import OptionError
 
-__all__ = ["RunContext", "RunInputs", "new_run_context", "collect_inputs", "input_fingerprint", "check_as_of",
+__all__ = ["RunContext", "RunInputs", "CentralState", "CENTRAL_STATE_FIELDS", "new_run_context", "collect_inputs",
+           "collect_aggregates", "central_state", "with_central_state", "input_fingerprint", "check_as_of",
            "AS_OF_MARGIN_DAYS", "prepare_state"]
 
 #: a cutoff may lie at most this many days after the later of today and the latest record date
@@ -102,6 +103,7 @@ class RunInputs:
     cluster_cohort_counts: pd.DataFrame | None = None  # site x arm x cohort period x cluster (cluster randomisation)
     previous_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)         # previous run's site sequences
     previous_pooled_sequences: pd.DataFrame = field(default_factory=pd.DataFrame)  # and its pooled ones
+    cohort_origin: date | None = None     # first day of the first trend period (None: no participants)
     # randomisation strata (only sites with two or more strata; see run/strata_sql.py)
     stratum_moments: pd.DataFrame = field(default_factory=pd.DataFrame)   # site x outcome x stratum x arm
     stratum_clusters: pd.DataFrame | None = None   # site x outcome x stratum x cluster x arm (cluster randomisation)
@@ -115,6 +117,22 @@ class RunInputs:
         if self.stratum_counts is None or self.stratum_counts.empty:
             return ()
         return tuple(sorted(self.stratum_counts.site_id.astype(str).unique()))
+
+
+#: the fields of :class:`RunInputs` read from the warehouse that *stores results* (the alert lifecycle and
+#: the running intersection of the sequences), not from the participant records; every other field is an
+#: aggregate of the records (see :func:`collect_aggregates`)
+CENTRAL_STATE_FIELDS = ("previous_alerts", "previous_run_id", "previous_sequences", "previous_pooled_sequences")
+
+
+@dataclass(frozen=True)
+class CentralState:
+    """What a run reads from earlier runs: the previous finished run's alerts and sequence state."""
+
+    previous_alerts: pd.DataFrame
+    previous_run_id: str | None
+    previous_sequences: pd.DataFrame
+    previous_pooled_sequences: pd.DataFrame
 
 
 def input_fingerprint(con: duckdb.DuckDBPyConnection, data_cutoff: datetime) -> tuple[str, int]:
@@ -132,7 +150,7 @@ def _period_start_sql(col: str, start_param: str = "$origin") -> str:
             f"* $period_days AS INTEGER)))")
 
 
-def _cohort_origin(con: duckdb.DuckDBPyConnection, ctx: RunContext):
+def _cohort_origin(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> date | None:
     origin = con.execute("SELECT min(assigned_on) FROM _participants").fetchall()[0][0]
     # align periods to the Monday on or before the first assignment when weekly
     if origin is not None and ctx.config.trends.period_days == 7:
@@ -140,9 +158,8 @@ def _cohort_origin(con: duckdb.DuckDBPyConnection, ctx: RunContext):
     return origin
 
 
-def _cluster_cohort_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> pd.DataFrame:
+def _cluster_cohort_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date | None) -> pd.DataFrame:
     """Cohort counts per site x arm x period x cluster (cluster randomisation: cluster-level tests)."""
-    origin = _cohort_origin(con, ctx)
     cols = ["site_id", "z", "period_start", "cluster_id", "n_assigned", "n_observed", "n_taken_up"]
     if origin is None:
         return pd.DataFrame(columns=cols)
@@ -155,15 +172,12 @@ def _cluster_cohort_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> p
     """, {"origin": origin, "period_days": ctx.config.trends.period_days}).df()
 
 
-def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date | None
+                  ) -> tuple[pd.DataFrame, pd.DataFrame]:
     period = ctx.config.trends.period_days
-    origin = con.execute("SELECT min(assigned_on) FROM _participants").fetchall()[0][0]
     if origin is None:
         empty = pd.DataFrame(columns=["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"])
         return empty, empty.copy()
-    # align periods to the Monday on or before the first assignment when weekly
-    if period == 7:
-        origin = origin - timedelta(days=origin.weekday())
     params = {"origin": origin, "period_days": period}
     cohort = con.execute(f"""
         SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
@@ -254,8 +268,25 @@ def prepare_state(con: duckdb.DuckDBPyConnection, config: StudyConfig) -> str:
     return refresh_state(con, basis_for(con, config))
 
 
-def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs:
-    """Run every SQL aggregation of the run and return the small frames."""
+def central_state(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> CentralState:
+    """The previous finished run's alerts and sequence state (read from the results, not the records)."""
+    prev_id, prev = _previous_alerts(con, ctx)
+    prev_site_seq, prev_pooled_seq = _previous_sequences(con, prev_id)
+    return CentralState(previous_alerts=prev, previous_run_id=prev_id, previous_sequences=prev_site_seq,
+                        previous_pooled_sequences=prev_pooled_seq)
+
+
+def with_central_state(inputs: RunInputs, state: CentralState) -> RunInputs:
+    """``inputs`` with the fields of :data:`CENTRAL_STATE_FIELDS` taken from ``state``."""
+    return replace(inputs, **{name: getattr(state, name) for name in CENTRAL_STATE_FIELDS})
+
+
+def collect_aggregates(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs:
+    """Every SQL aggregation over the participant records (the fields of :data:`CENTRAL_STATE_FIELDS` are empty).
+
+    Sums add: the aggregates of warehouses holding disjoint sets of sites combine into those of one
+    warehouse holding them all (``pipeline/run/moments_package.py``).
+    """
     config = ctx.config
     spec = SampleSpec.from_config(config, ctx.as_of, ctx.data_cutoff)
     outcomes = outcome_names(con, config)
@@ -266,11 +297,11 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
         moments = site_outcome_moments(con)
         clusters = cluster_moments(con) if config.randomisation_unit == "cluster" else None
         cells = covariate_cells(con, spec, list(config.covariates))
-        cohort, calendar = _trend_counts(con, ctx)
-        cluster_cohort = (_cluster_cohort_counts(con, ctx) if config.randomisation_unit == "cluster" else None)
+        origin = _cohort_origin(con, ctx)
+        cohort, calendar = _trend_counts(con, ctx, origin)
+        cluster_cohort = (_cluster_cohort_counts(con, ctx, origin) if config.randomisation_unit == "cluster"
+                          else None)
         activity = _site_activity(con, ctx)
-        prev_id, prev = _previous_alerts(con, ctx)
-        prev_site_seq, prev_pooled_seq = _previous_sequences(con, prev_id)
         strata = collect_strata(con, config.randomisation_unit == "cluster", list(config.covariates),
                                 ctx.data_cutoff)
         adjusted = {}
@@ -283,10 +314,16 @@ def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs
         drop_sample(con)
     return RunInputs(sites=sites, outcomes=tuple(outcomes), moments=moments, clusters=clusters,
                      covariate_cells=cells, cohort_counts=cohort, calendar_counts=calendar,
-                     site_activity=activity, previous_alerts=prev, previous_run_id=prev_id,
+                     site_activity=activity, previous_alerts=pd.DataFrame(), previous_run_id=None,
                      n_batches=n_batches, input_fingerprint=fingerprint, adjusted=adjusted,
-                     previous_sequences=prev_site_seq, previous_pooled_sequences=prev_pooled_seq,
-                     cluster_cohort_counts=cluster_cohort,
+                     cluster_cohort_counts=cluster_cohort, cohort_origin=origin,
                      stratum_moments=strata.moments, stratum_clusters=strata.clusters,
                      stratum_counts=strata.counts, stratum_covariate_cells=strata.covariate_cells)
 
+
+def collect_inputs(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunInputs:
+    """Run every SQL aggregation of the run and return the small frames.
+
+    = :func:`collect_aggregates` (the participant records) + :func:`central_state` (earlier runs).
+    """
+    return with_central_state(collect_aggregates(con, ctx), central_state(con, ctx))

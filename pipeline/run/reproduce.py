@@ -21,6 +21,7 @@ import pandas as pd
 
 from takeup.pipeline.run.stages import compute_all
 from takeup.pipeline.run.inputs import RunContext, collect_inputs, input_fingerprint
+from takeup.pipeline.run.pooled_inputs import reproduce_pooled_inputs
 from takeup.pipeline.warehouse import connect
 from takeup.schemas.config import parse_config
 
@@ -71,11 +72,15 @@ def reproduce_run(warehouse: Path | str, run_id: str, tolerance: float = 1e-9) -
     """Recompute ``run_id`` without writing anything and compare it with the stored tables."""
     con = connect(warehouse, read_only=True)
     try:
-        row = con.execute("SELECT as_of, started_at, config_hash, input_fingerprint, mode, flow_run_id, status "
-                          "FROM runs WHERE run_id = $r", {"r": run_id}).fetchall()
+        # moments_sources is absent from a warehouse last written by an older version
+        pooled = con.execute("SELECT count(*) FROM information_schema.columns WHERE table_name = 'runs' "
+                             "AND column_name = 'moments_sources'").fetchone()[0]
+        row = con.execute("SELECT as_of, started_at, config_hash, input_fingerprint, mode, flow_run_id, status, "
+                          f"{'moments_sources' if pooled else 'NULL'} FROM runs WHERE run_id = $r",
+                          {"r": run_id}).fetchall()
         if not row:
             raise ReproduceError(f"no run {run_id!r} in {warehouse}")
-        as_of, started, cfg_hash, fingerprint, mode, flow_run_id, status = row[0]
+        as_of, started, cfg_hash, fingerprint, mode, flow_run_id, status, sources = row[0]
         if status not in ("ok", "partial"):
             raise ReproduceError(f"run {run_id} has status {status!r}; only finished runs can be reproduced")
         cfg_row = con.execute("SELECT config_json FROM study_configs WHERE config_hash = $h LIMIT 1",
@@ -83,13 +88,16 @@ def reproduce_run(warehouse: Path | str, run_id: str, tolerance: float = 1e-9) -
         if not cfg_row:
             raise ReproduceError(f"the configuration {cfg_hash[:12]} of run {run_id} is not stored")
         config = parse_config(json.loads(cfg_row[0][0]), "the run's stored configuration")
-        fp, _ = input_fingerprint(con, started)
-        if fp != fingerprint:
-            raise ReproduceError(f"the batches received before run {run_id} started have changed "
-                                 "(fingerprint mismatch): the input cannot be rebuilt")
         ctx = RunContext(run_id=run_id, as_of=as_of, started_at=started, data_cutoff=started, config=config,
                          mode=mode, flow_run_id=flow_run_id)
-        inputs = collect_inputs(con, ctx)
+        if sources is not None:          # pooled from stored moments packages or from shards
+            inputs = reproduce_pooled_inputs(con, ctx, warehouse, json.loads(sources), fingerprint)
+        else:
+            fp, _ = input_fingerprint(con, started)
+            if fp != fingerprint:
+                raise ReproduceError(f"the batches received before run {run_id} started have changed "
+                                     "(fingerprint mismatch): the input cannot be rebuilt")
+            inputs = collect_inputs(con, ctx)
         results = compute_all(inputs, ctx, {})
         diffs, problems = {}, {}
         for table in _TABLES:

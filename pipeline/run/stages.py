@@ -37,6 +37,7 @@ import duckdb
 from takeup.pipeline.run.alert_rules import compute_alerts
 from takeup.pipeline.run.inputs import (RunContext, RunInputs, check_as_of, collect_inputs, new_run_context,
                                        prepare_state)
+from takeup.pipeline.run.pooled_inputs import gather_inputs, record_sources
 from takeup.pipeline.run.pooled_rows import pool_outcome
 from takeup.pipeline.run.sequence_rows import add_sequences, precision_rows
 from takeup.pipeline.run.sample_sql import cluster_moments_for_outcome, moments_for_outcome
@@ -222,8 +223,11 @@ def run_monitoring(warehouse: Path | str, as_of: date | None = None, config: Stu
         inputs = None
         try:
             with timed(timings, "collect_inputs"):
-                prepare_state(con, ctx.config)
-                inputs = collect_inputs(con, ctx)
+                if not ctx.config.shards:
+                    prepare_state(con, ctx.config)      # the participant state of this warehouse's records
+                inputs, sources = gather_inputs(con, ctx, warehouse)   # one warehouse, or the study's shards
+            if sources is not None:
+                record_sources(con, ctx, sources)
             results = compute_all(inputs, ctx, timings)
             with timed(timings, "write"):
                 counts = write_results(con, ctx, results)

@@ -115,10 +115,12 @@ def start_run(con: duckdb.DuckDBPyConnection, ctx: RunContext, owner: dict | Non
     """
     abandoned = mark_abandoned_runs(con)
     store_config(con, ctx.config)
-    con.execute("INSERT INTO runs VALUES ($run, $flow, $mode, $as_of, $start, NULL, 'running', $ver, $cfg, '', 0, 0, "
-                "$owner, NULL)", {"run": ctx.run_id, "flow": ctx.flow_run_id, "mode": ctx.mode, "as_of": ctx.as_of,
-                                  "start": ctx.started_at, "ver": code_version(), "cfg": ctx.config_hash,
-                                  "owner": json.dumps({"owner": owner or process_owner()})})
+    con.execute("INSERT INTO runs (run_id, flow_run_id, mode, as_of, started_at, finished_at, status, code_version, "
+                "config_hash, input_fingerprint, n_batches, n_sites, timings_json, message) "
+                "VALUES ($run, $flow, $mode, $as_of, $start, NULL, 'running', $ver, $cfg, '', 0, 0, $owner, NULL)",
+                {"run": ctx.run_id, "flow": ctx.flow_run_id, "mode": ctx.mode, "as_of": ctx.as_of,
+                 "start": ctx.started_at, "ver": code_version(), "cfg": ctx.config_hash,
+                 "owner": json.dumps({"owner": owner or process_owner()})})
     return abandoned
 
 
