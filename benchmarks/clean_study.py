@@ -141,11 +141,16 @@ def simulate_clean_study(n_sites: int, seed: int, median_weekly: float = 10.0, c
 
 
 def write_files(study: CleanStudy, out: Path) -> list[Path]:
-    """One Parquet file per record kind (assignments first)."""
+    """One Parquet file per record kind (assignments first); a kind with no records yet gets no file.
+
+    (A file that names its columns but holds no records is refused at ingestion.)
+    """
     import pyarrow.parquet as pq
     out.mkdir(parents=True, exist_ok=True)
     paths = []
     for kind, table in (("assignment", study.assignments), ("uptake", study.uptake), ("outcome", study.outcomes)):
+        if table.num_rows == 0:
+            continue
         path = out / f"clean_{kind}.parquet"
         pq.write_table(table, path)
         paths.append(path)
