@@ -93,3 +93,33 @@ def test_planted_shift_still_detected():
     # cohort chart signals at a cohort's end, counted here including the first changed cohort:
     # about 3 cohorts (benchmarks/calibration.py: 3.1 with either limit); allow 3.5
     assert delay_weeks.mean() <= 3.5
+
+
+@pytest.mark.parametrize("p0, odds_ratio, logit_sd", [(0.09975, 1 / 1.5, 0.4), (0.35, 1.5, 0.06), (0.7, 1 / 1.5, 0.2)])
+def test_calibrated_limit_is_the_smallest_that_meets_the_expected_rate(p0, odds_ratio, logit_sd):
+    """The limit's defining property, checked directly with the exact chain (``arl_bernoulli``)
+    and Gauss-Hermite weights from numpy: the expected false-alarm rate is at most 1/ARL0 at the
+    returned limit and above it 0.2% lower (the search's tolerance is 0.1%).  The first case has
+    true levels at which the chart practically never signals (ARL beyond 1e16, where the solve
+    fails): they must add nothing, not be taken for alarms (which used to push its limit to 7.65)."""
+    from takeup.pipeline.stats.drift.chart import shifted_rate
+    from takeup.pipeline.stats.drift.design import calibrate_for_estimated_level, design_cusum
+    from takeup.pipeline.stats.drift.run_length import arl_bernoulli
+
+    arl0 = 2000.0
+    p1 = float(shifted_rate(np.array([p0]), np.array([odds_ratio]))[0])
+    h_known = float(np.asarray(design_cusum(np.array([p0]), shift_odds_ratio=np.array([odds_ratio]),
+                                            target_arl0=arl0).h)[0])
+    h = calibrate_for_estimated_level(p0, p1, h_known, arl0, logit_sd, rel_tol=1e-3)
+    x, w = np.polynomial.hermite.hermgauss(7)
+    p_true = 1 / (1 + np.exp(-(np.log(p0 / (1 - p0)) + np.sqrt(2) * logit_sd * x)))
+
+    def expected_rate(limit):
+        arl = np.asarray(arl_bernoulli(p0, p1, limit, p_true=p_true, rel_tol=1e-3, max_states=50_000).arl)
+        finite = np.isfinite(arl)
+        assert np.all(finite | ((p_true > p0) if odds_ratio < 1 else (p_true < p0))), "only never-signalling levels fail"
+        return float(np.sum(w[finite] / np.sqrt(np.pi) / arl[finite]))
+
+    assert h > h_known
+    assert expected_rate(h) <= 1 / arl0
+    assert expected_rate(h * (1 - 2e-3)) > 1 / arl0

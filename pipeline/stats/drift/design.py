@@ -62,6 +62,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import math
+
 import numpy as np
 
 from takeup.pipeline.stats.drift.chart import _param_note, _readonly, shifted_rate
@@ -322,26 +324,55 @@ def calibrate_for_estimated_level(p0: float, p1: float, h_known: float, target_a
     def rate(h: float) -> float:
         arl = np.asarray(arl_bernoulli(p0, p1, h, p_true=p_true, rel_tol=rel_tol, max_states=max_states).arl,
                          dtype=float)
+        # the chain's solve fails only when I - Q is numerically singular: a true level at which the
+        # chart (almost) never signals (ARL beyond ~1e16), which adds nothing to the false-alarm rate
+        arl = np.where(np.isnan(arl), np.inf, arl)
         return float(np.sum(w / np.maximum(arl, 1.0)))
 
     goal = 1.0 / float(target_arl0)
-    lo, hi = float(h_known), float(h_known)
-    if rate(lo) <= goal:
+
+    def excess(h: float) -> float:           # log expected false-alarm rate over the goal; falls as h grows
+        r = rate(h)
+        if not math.isfinite(r):             # an ARL that could not be computed counts as too many alarms
+            return math.inf
+        return math.log(r / goal) if r > 0 else -math.inf
+
+    lo = float(h_known)
+    f_lo = excess(lo)
+    if f_lo <= 0:
         return lo
-    cap = float(h_max_factor) * float(h_known)
-    step = 0.25 * max(lo, 1.0)
-    while True:                              # bracket: the expected false-alarm rate falls as h grows
-        hi = min(hi + step, cap)
-        if rate(hi) <= goal:
-            break
+    cap = float(h_max_factor) * lo
+    # bracket: log ARL grows about linearly in h, so extrapolate the log rate linearly (with 20%
+    # overshoot) from the last two limits; the first step is a quarter of the known-level limit
+    hi = min(lo + 0.25 * max(lo, 1.0), cap)
+    f_hi = excess(hi)
+    while f_hi > 0:
         if hi >= cap:
             return cap
-        lo = hi
-        step *= 1.5
+        slope = (f_hi - f_lo) / (hi - lo) if math.isfinite(f_hi) and math.isfinite(f_lo) else 0.0
+        step = 1.2 * f_hi / -slope if slope < 0 else 0.0
+        nxt = min(max(hi + max(step, 0.25 * (hi - lo)), hi + 0.05 * hi), cap)
+        lo, f_lo, hi = hi, f_hi, nxt
+        f_hi = excess(hi)
+    # Illinois regula falsi on [lo, hi] (f_lo > 0 >= f_hi), each trial kept a little inside the
+    # bracket so that it also closes from the side the interpolation approaches
+    moved = 0                                # which end the last trial replaced: -1 hi, +1 lo
     while hi - lo > h_tol * hi:
-        mid = 0.5 * (lo + hi)
-        if rate(mid) <= goal:
-            hi = mid
+        if math.isfinite(f_hi) and math.isfinite(f_lo):
+            c = hi - f_hi * (hi - lo) / (f_hi - f_lo)
         else:
-            lo = mid
+            c = 0.5 * (lo + hi)
+        margin = 0.4 * h_tol * hi
+        c = min(max(c, lo + margin), hi - margin)
+        f_c = excess(c)
+        if f_c <= 0:
+            hi, f_hi = c, f_c
+            if moved == -1:                  # lo kept twice: halve its value (the Illinois step)
+                f_lo *= 0.5
+            moved = -1
+        else:
+            lo, f_lo = c, f_c
+            if moved == 1:
+                f_hi *= 0.5
+            moved = 1
     return float(hi)

@@ -43,12 +43,13 @@ References
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
 import scipy.sparse as sparse
-from scipy.sparse.linalg import spsolve
+from scipy.sparse.linalg import MatrixRankWarning, spsolve
 from scipy.stats import binom
 
 from takeup.pipeline.stats.drift.chart import _param_note, _readonly
@@ -110,6 +111,8 @@ def _chain_arl(grid: _Grid, n_states: int, q_up: float, group_size: int = 1) -> 
     moves to ``max(0, s + k*U - (group_size - k)*D)`` and is absorbed
     (signal) at ``>= n_states``.
     """
+    if group_size == 1:
+        return _two_point_chain_arl(grid, n_states, q_up)
     k = np.arange(group_size + 1)
     weight = binom.pmf(k, group_size, q_up)
     k, weight = k[weight > 0], weight[weight > 0]
@@ -122,9 +125,44 @@ def _chain_arl(grid: _Grid, n_states: int, q_up: float, group_size: int = 1) -> 
     cols = np.concatenate([s, dest[inside]])
     vals = np.concatenate([np.ones(n_states), -np.broadcast_to(weight, dest.shape)[inside]])
     matrix = sparse.csc_matrix((vals, (rows, cols)), shape=(n_states, n_states))
-    with np.errstate(all="ignore"):
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", MatrixRankWarning)
         sol = spsolve(matrix, np.ones(n_states))
     return float(np.atleast_1d(sol)[0]) * group_size
+
+
+def _two_point_chain_arl(grid: _Grid, n_states: int, q_up: float) -> float:
+    """:func:`_chain_arl` for one participant per step, with ``I - Q`` built directly in CSR form.
+
+    Row ``s`` holds at most three entries in column order: the down-move ``max(0, s - D)``, the
+    diagonal and the up-move ``s + U`` (dropped when it signals); for ``s < D`` and ``s = 0`` the
+    down-move lands on state 0, which is the diagonal itself when ``s = 0``.  The same matrix as
+    the general construction, without its coordinate-format detour (a calibration solves it
+    hundreds of times).
+    """
+    n, up, down = n_states, grid.up_units, grid.down_units
+    s = np.arange(n)
+    down_col = np.maximum(s - down, 0)
+    has_up = s + up < n
+    # per row: [down (absent on row 0, where it is the diagonal), diagonal, up (if inside)]
+    counts = 1 + (s > 0) + has_up
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(counts, out=indptr[1:])
+    cols = np.full((n, 3), -1, dtype=np.int64)
+    vals = np.zeros((n, 3))
+    cols[1:, 0] = down_col[1:]
+    vals[1:, 0] = -(1.0 - q_up)
+    cols[:, 1] = s
+    vals[:, 1] = 1.0
+    vals[0, 1] = q_up                        # state 0 stays at 0 on a down-move
+    cols[has_up, 2] = s[has_up] + up
+    vals[has_up, 2] = -q_up
+    keep = cols >= 0
+    matrix = sparse.csr_matrix((vals[keep], cols[keep], indptr), shape=(n, n))
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", MatrixRankWarning)   # singular: the chart never signals (caller's NaN)
+        sol = spsolve(matrix, np.ones(n))
+    return float(np.atleast_1d(sol)[0])
 
 
 def _n_states(h: float, delta: float, slack: float = 1e-9) -> int:
