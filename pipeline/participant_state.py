@@ -44,7 +44,7 @@ from takeup.schemas.ddl import create_table_sql
 from takeup.schemas.records import ParticipantStateRow
 
 __all__ = ["StateBasis", "basis_for", "refresh_state", "state_is_current", "stored_basis", "state_rows_sql",
-           "STATE_REBUILD_SHARE"]
+           "STATE_REBUILD_SHARE", "STATE_PART_PARTICIPANTS"]
 
 #: rebuild the whole state (instead of replacing the touched participants' rows) when the new
 #: batches touch more than this share of the participants already in the state
@@ -98,12 +98,18 @@ def state_is_current(con: duckdb.DuckDBPyConnection, basis: StateBasis) -> bool:
     return stored_basis(con) == basis.to_json() and not _pending_batches(con)
 
 
-def state_rows_sql(basis: StateBasis, keys: str | None = None) -> tuple[str, dict]:
+def state_rows_sql(basis: StateBasis, keys: str | None = None, part: tuple[int, int] | None = None) -> tuple[str, dict]:
     """``SELECT`` of the state rows (all assigned participants, or those whose key is in table ``keys``).
+
+    ``part = (i, n)`` keeps the participants whose key is ``i`` modulo ``n`` (keys are keyed hashes, so
+    the parts are of about equal size): a large state is written part by part, each part's
+    aggregations and joins within the memory budget.
 
     Returns the SQL and its parameters.  Every record and batch counts: the cutoff is the run's business.
     """
     only = f" AND t.participant_key IN (SELECT participant_key FROM {keys})" if keys else ""
+    if part is not None and part[1] > 1:
+        only += f" AND t.participant_key % {int(part[1])} = {int(part[0])}"
     names = ("SELECT generate_subscripts($outcomes, 1) - 1 AS slot, unnest($outcomes) AS outcome"
              if basis.outcomes else "SELECT 0 AS slot, CAST(NULL AS VARCHAR) AS outcome")
     sql = f"""
@@ -135,6 +141,20 @@ def state_rows_sql(basis: StateBasis, keys: str | None = None) -> tuple[str, dic
         CROSS JOIN names LEFT JOIN o ON o.participant_key = a.participant_key AND o.outcome = names.outcome
     """
     return sql, {"outcomes": list(basis.outcomes), "min_days": basis.min_days, "max_days": basis.max_days}
+
+
+#: participants written per statement when the state is (re)built: the statement's hash aggregates
+#: and joins grow with the participants they hold (one statement over 10 million fitted the default
+#: 1200 MB budget, one over 30 million ran out of memory), so a large state is written in parts of
+#: at most this many; each extra part costs one more scan of the record tables
+STATE_PART_PARTICIPANTS = 2_000_000
+
+
+def _insert_state(con: duckdb.DuckDBPyConnection, basis: StateBasis, keys: str | None, n_participants: int) -> None:
+    n_parts = max(1, -(-int(n_participants) // STATE_PART_PARTICIPANTS))
+    for i in range(n_parts):
+        sql, params = state_rows_sql(basis, keys=keys, part=(i, n_parts))
+        con.execute(f"INSERT INTO participant_state ({_columns()}) {sql}", params)
 
 
 def _columns() -> str:
@@ -176,13 +196,12 @@ def refresh_state(con: duckdb.DuckDBPyConnection, basis: StateBasis) -> str:
                 mode = "updated"
                 con.execute("DELETE FROM participant_state WHERE participant_key IN "
                             "(SELECT participant_key FROM _state_touched)")
-                sql, params = state_rows_sql(basis, keys="_state_touched")
-                con.execute(f"INSERT INTO participant_state ({_columns()}) {sql}", params)
+                _insert_state(con, basis, "_state_touched", n_touched)
         if mode == "rebuilt":
             con.execute("DROP TABLE IF EXISTS participant_state")
             con.execute(create_table_sql("participant_state", ParticipantStateRow))
-            sql, params = state_rows_sql(basis)
-            con.execute(f"INSERT INTO participant_state ({_columns()}) {sql}", params)
+            n_assigned = con.execute("SELECT count(*) FROM assignments").fetchone()[0]
+            _insert_state(con, basis, None, n_assigned)
             con.execute("DELETE FROM participant_state_batches")
             pending = [r[0] for r in con.execute("SELECT batch_id FROM batches WHERE status = 'loaded'").fetchall()]
             con.execute("DELETE FROM warehouse_meta WHERE key = 'state_basis'")

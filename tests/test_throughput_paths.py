@@ -303,6 +303,38 @@ def test_state_follows_late_assignments_and_a_new_follow_up_rule(warehouse, tmp_
     con.close()
 
 
+def test_state_written_in_parts_equals_one_statement(demo_warehouse, tmp_path, monkeypatch):
+    """A large state is written part by part (participant key modulo the number of parts) to stay
+    inside the memory budget; the rows must be those of one statement, for a rebuild and for an
+    update of the participants a new batch touches."""
+    import takeup.pipeline.participant_state as ps
+
+    snaps = {}
+    real = ps.state_rows_sql
+    for label, per_part in (("one", 10**9), ("parts", 97)):
+        path = tmp_path / f"{label}.duckdb"
+        shutil.copy(demo_warehouse["path"], path)
+        monkeypatch.setattr(ps, "STATE_PART_PARTICIPANTS", per_part)
+        con = connect(path)
+        try:
+            statements = []
+            monkeypatch.setattr(ps, "state_rows_sql", lambda *a, **k: statements.append(k.get("part")) or real(*a, **k))
+            con.execute("DELETE FROM warehouse_meta WHERE key = 'state_basis'")    # forces a rebuild
+            assert refresh_state(con, basis_for(con, stored_config(con))) == "rebuilt"
+            n = con.execute("SELECT count(*) FROM assignments").fetchone()[0]
+            assert len(statements) == (1 if per_part > n else -(-n // per_part)) and len(statements) > 0
+            # an update: one batch's participants recomputed (their state rows deleted and written again)
+            batch = con.execute("SELECT batch_id FROM batches WHERE kind = 'uptake' AND status = 'loaded' "
+                                "ORDER BY received_at DESC LIMIT 1").fetchone()[0]
+            con.execute("DELETE FROM participant_state_batches WHERE batch_id = $b", {"b": batch})
+            assert refresh_state(con, basis_for(con, stored_config(con))) == "updated"
+        finally:
+            con.close()
+        snaps[label] = _snapshot(path)["participant_state"]
+    pd.testing.assert_frame_equal(snaps["one"], snaps["parts"])
+    assert len(snaps["one"]) > 0
+
+
 # ----------------------------------------------------------------------------- schema 2 -> 3
 def _to_schema_2(path):
     """Rewrite a warehouse into the previous layout: no participant state, schema_version 2."""
