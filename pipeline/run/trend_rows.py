@@ -88,6 +88,7 @@ from takeup.pipeline.stats.drift.run_length import arl_bernoulli
 from takeup.pipeline.stats.drift.shrinkage import shrink_rates
 from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.run.site_rows import clean
+from takeup.pipeline.stats.readonly import readonly_array as _readonly
 
 __all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "closed_cohort_counts", "ARMS_BY_Z",
            "DESIGN_REL_TOL", "ClusterDriftCounts", "cluster_drift_counts", "detect_cluster_drift",
@@ -193,12 +194,6 @@ class DriftResult:
             if s == site_id and a == arm:
                 return i
         return None
-
-
-def _readonly(a, dtype=float) -> np.ndarray:
-    arr = np.array(a, dtype=dtype, copy=True)
-    arr.setflags(write=False)
-    return arr
 
 
 def _as_dates(col: pd.Series) -> pd.Series:

@@ -91,15 +91,10 @@ import numpy as np
 from scipy import special
 
 from takeup.pipeline.stats.sequential import mixture_p_value, mixture_rho2
+from takeup.pipeline.stats.readonly import readonly_array as _ro
 
 __all__ = ["one_sided_mixture_p_value", "two_sided_mixture_p_value", "z_from_p_value", "ratio_mixture_p_value",
            "ratio_concentration", "look_spending", "spent_p_value"]
-
-
-def _ro(a) -> np.ndarray:
-    a = np.array(a, dtype=float, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 def two_sided_mixture_p_value(z, t, alpha: float, horizon: float) -> np.ndarray:

@@ -33,13 +33,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
+from takeup.pipeline.stats.readonly import readonly_array as _ro
+
 __all__ = ["mde_multiplier", "PrecisionForecast", "precision_forecast"]
-
-
-def _ro(a, dtype=float) -> np.ndarray:
-    a = np.array(a, dtype=dtype, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 def mde_multiplier(alpha: float, power: float) -> float:

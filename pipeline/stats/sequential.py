@@ -87,15 +87,10 @@ import numpy as np
 from scipy.special import lambertw
 
 from takeup.pipeline.stats.estimators.weak_iv import ARSet, anderson_rubin_set
+from takeup.pipeline.stats.readonly import readonly_array as _ro
 
 __all__ = ["mixture_rho2", "mixture_multiplier", "mixture_p_value", "ConfidenceSequence", "confidence_sequence",
            "running_intersection", "anytime_ar_set", "intersect_sets"]
-
-
-def _ro(a, dtype=float) -> np.ndarray:
-    a = np.array(a, dtype=dtype, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 def _check_alpha(alpha: float) -> None:

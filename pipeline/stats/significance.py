@@ -27,6 +27,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from takeup.pipeline.stats.readonly import readonly_array
+
 __all__ = [
     "SampleRatioResult",
     "TwoProportionResult",
@@ -45,9 +47,7 @@ _ALTERNATIVES = ("two-sided", "larger", "smaller")
 
 
 def _readonly(arr) -> np.ndarray:
-    arr = np.array(arr, copy=True)
-    arr.setflags(write=False)
-    return arr
+    return readonly_array(arr, dtype=None)
 
 
 def _site_array(value, name: str) -> np.ndarray:

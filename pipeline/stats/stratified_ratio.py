@@ -14,13 +14,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from takeup.pipeline.stats.readonly import readonly_array as _ro
+
 __all__ = ["StratifiedRatioResult", "stratified_sample_ratio_test"]
-
-
-def _ro(a, dtype=float) -> np.ndarray:
-    a = np.array(a, dtype=dtype, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 @dataclass(frozen=True)

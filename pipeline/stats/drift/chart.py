@@ -43,13 +43,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from takeup.pipeline.stats.readonly import readonly_array
+
 __all__ = ["CusumResult", "bernoulli_cusum", "shifted_rate"]
 
 
-def _readonly(arr: np.ndarray) -> np.ndarray:
-    arr = np.array(arr, copy=True)
-    arr.setflags(write=False)
-    return arr
+def _readonly(arr) -> np.ndarray:
+    return readonly_array(arr, dtype=None)
 
 
 def _param_note(p0: float, p1: float, h: float | None = None) -> str:

@@ -59,6 +59,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from takeup.pipeline.stats.readonly import readonly_array as _ro
+
 __all__ = ["CrossMoments", "ScoreMoments", "AdjustedEstimates", "adjusted_coefficients", "adjusted_estimates",
            "cross_moments_from_arrays", "score_moments_from_arrays", "V_NAMES", "q_index", "w_index"]
 
@@ -74,12 +76,6 @@ def q_index(p: int) -> list[int]:
 def w_index(p: int) -> list[int]:
     """Positions of the regressors (1, D, X)."""
     return [0, 2, *range(4, 4 + p)]
-
-
-def _ro(a, dtype=float) -> np.ndarray:
-    a = np.array(a, dtype=dtype, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 @dataclass(frozen=True)

@@ -22,6 +22,7 @@ import numpy as np
 
 from takeup.pipeline.stats.estimators.moments import SiteMoments
 from takeup.pipeline.stats.estimators.wald import status_and_note
+from takeup.pipeline.stats.readonly import readonly_array as _ro
 
 __all__ = [
     "ComplierOutcomeMeans",
@@ -32,12 +33,6 @@ __all__ = [
 ]
 
 _EPS8 = 8 * np.finfo(float).eps
-
-
-def _ro(a) -> np.ndarray:
-    a = np.array(a, dtype=float, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 @dataclass(frozen=True)

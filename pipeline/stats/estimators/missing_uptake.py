@@ -15,13 +15,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from takeup.pipeline.stats.readonly import readonly_array as _ro
+
 __all__ = ["ComplierShareBounds", "complier_share_bounds"]
-
-
-def _ro(a) -> np.ndarray:
-    arr = np.array(a, dtype=float, copy=True)
-    arr.setflags(write=False)
-    return arr
 
 
 @dataclass(frozen=True)

@@ -30,6 +30,7 @@ from scipy import stats
 from takeup.pipeline.stats.estimators.moments import ArmMoments, SiteMoments
 from takeup.pipeline.stats.estimators.wald import (_ZERO_RTOL, WaldEstimates, _centred, _positive_or_nan,
                                                    status_and_note)
+from takeup.pipeline.stats.readonly import readonly_array as _ro
 
 __all__ = ["StratifiedMoments", "StratumClusterMoments", "StratifiedEstimates", "stratified_wald",
            "weighted_site_moments", "stratified_kappa_means", "stratified_moments_from_arrays",
@@ -37,12 +38,6 @@ __all__ = ["StratifiedMoments", "StratumClusterMoments", "StratifiedEstimates", 
 
 #: a stratum enters a site's estimate only with at least this many participants in each arm
 MIN_PER_ARM = 2
-
-
-def _ro(a, dtype=float) -> np.ndarray:
-    a = np.array(a, dtype=dtype, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 @dataclass(frozen=True)

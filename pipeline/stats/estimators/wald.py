@@ -21,6 +21,7 @@ import numpy as np
 from scipy import stats
 
 from takeup.pipeline.stats.estimators.moments import ClusterMoments, SiteMoments
+from takeup.pipeline.stats.readonly import readonly_array as _readonly
 
 __all__ = ["WaldEstimates", "wald_estimates", "status_and_note"]
 
@@ -64,12 +65,6 @@ def status_and_note(flags: list[tuple[np.ndarray, str, str]], n_sites: int
     status.setflags(write=False)
     note.setflags(write=False)
     return status, note
-
-
-def _readonly(a: np.ndarray) -> np.ndarray:
-    a = np.array(a, dtype=float, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 @dataclass(frozen=True)

@@ -17,6 +17,7 @@ import numpy as np
 from scipy import stats
 
 from takeup.pipeline.stats.estimators.wald import status_and_note
+from takeup.pipeline.stats.readonly import readonly_array as _ro
 
 __all__ = [
     "ARSet",
@@ -31,12 +32,6 @@ __all__ = [
     "TF_F_MIN",
     "TF_F_STANDARD",
 ]
-
-
-def _ro(a, dtype=float) -> np.ndarray:
-    a = np.array(a, dtype=dtype, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 def _broadcast_inputs(*xs):

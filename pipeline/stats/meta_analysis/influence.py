@@ -16,14 +16,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from takeup.pipeline.stats.meta_analysis.meta import MetaResult, clean_inputs, combine
+from takeup.pipeline.stats.readonly import readonly_array as _readonly
 
 __all__ = ["InfluenceResult", "site_influence", "empirical_bayes", "OutlierTest", "outlier_test"]
-
-
-def _readonly(a) -> np.ndarray:
-    arr = np.array(a, dtype=float)
-    arr.setflags(write=False)
-    return arr
 
 
 @dataclass(frozen=True)
