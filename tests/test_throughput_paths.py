@@ -304,7 +304,7 @@ def test_state_follows_late_assignments_and_a_new_follow_up_rule(warehouse, tmp_
 
 
 def test_state_written_in_parts_equals_one_statement(demo_warehouse, tmp_path, monkeypatch):
-    """A large state is written part by part (participant key modulo the number of parts) to stay
+    """A large state is written part by part (equal ranges of the participant key) to stay
     inside the memory budget; the rows must be those of one statement, for a rebuild and for an
     update of the participants a new batch touches."""
     import takeup.pipeline.participant_state as ps
