@@ -19,6 +19,7 @@ median).  Timing is reported, never asserted.
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import signal
 import statistics
@@ -28,6 +29,8 @@ import tempfile
 import time
 from datetime import date
 from pathlib import Path
+
+RESULTS = Path(__file__).resolve().parent / "orchestration_results.json"
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
@@ -126,6 +129,15 @@ def main() -> None:
               f"{statistics.median(ts) - statistics.median(imports['takeup.pipeline.cli']):+.1f} vs the CLI import |")
     print(f"\n`takeup api-server` start-up (once, until it answers): {startup:.1f} s; {args.repeats} repeats per mode, "
           f"interleaved; {os.cpu_count()} CPU(s).")
+    med = {mode: statistics.median(ts) for mode, ts in times.items()}
+    summary = (f"demo, fresh `takeup run` process: in process {med['in process']:.1f} s; orchestrated with the "
+               f"ephemeral API {med['orchestrated, ephemeral API']:.1f} s "
+               f"({med['orchestrated, ephemeral API'] - floor:+.1f} s); against a running `takeup api-server` "
+               f"{med['orchestrated, running server']:.1f} s ({med['orchestrated, running server'] - floor:+.1f} s; "
+               f"server start-up {startup:.1f} s, paid once)")
+    RESULTS.write_text(json.dumps({"when": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()), "median_s": med,
+                                   "api_server_startup_s": startup, "repeats": args.repeats, "summary": summary},
+                                  indent=1))
 
 
 if __name__ == "__main__":

@@ -309,14 +309,15 @@ def render_table(res: dict) -> str:
     if orch.exists():
         try:
             o = json.loads(orch.read_text())
-            lines.append(f"| Orchestration overhead (benchmarks/orchestration.py) | {o.get('summary', o)} | | |")
+            lines.append(f"| Orchestration overhead (`benchmarks/orchestration.py`, {o.get('when')}) "
+                         f"| {o.get('summary', o)} | | |")
         except (ValueError, OSError):
             pass
     else:
         lines.append("| Orchestration overhead | see `benchmarks/orchestration.py` (issue 11, part 5) | | |")
     lines.append("")
     lines.append(f"Measured {res.get('when')}; load average at start {res.get('load_start')}, at end "
-                 f"{res.get('load_end')}; 2 cores shared with other jobs.")
+                 f"{res.get('load_end')} (the benchmark's own processes included); 2 cores.")
     return "\n".join(lines)
 
 
