@@ -25,10 +25,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 from takeup.pipeline.stats.estimators.moments import ArmMoments, SiteMoments
-from takeup.pipeline.stats.estimators.wald import (_ZERO_RTOL, WaldEstimates, _centred, _positive_or_nan,
+from takeup.pipeline.stats.estimators.wald import (WaldEstimates, _centred, _finish_variances,
                                                    status_and_note)
 from takeup.pipeline.stats.readonly import readonly_array as _ro
 
@@ -286,26 +285,11 @@ def stratified_wald(sm: StratifiedMoments, clusters: StratumClusterMoments | Non
             few_clusters = has & (min_per_arm < int(min_clusters_per_arm))
 
         no_se = ~has | few_clusters | ~(n - S - 1.0 > 0)
-        v_g = np.where(no_se, nan, factor * v_g)
-        v_p = np.where(no_se, nan, factor * v_p)
-        cov = np.where(no_se, nan, factor * cov)
-        v_b = np.where(no_se | zero_fs, nan, factor * v_u / np.where(zero_fs | no_se, 1.0, pi) ** 2)
-        const_y = has & ~no_se & ~(v_g > _ZERO_RTOL * scale_g)
-        fixed_d = has & ~no_se & ~(v_p > _ZERO_RTOL * scale_p)
-        zero_vb = has & ~no_se & ~zero_fs & ~(factor * v_u > _ZERO_RTOL * scale_b)
-        v_g = _positive_or_nan(v_g, scale_g)
-        v_p = _positive_or_nan(v_p, scale_p)
-        v_b = np.where(zero_vb, nan, v_b)
-        cov = np.where(np.isnan(v_g) | np.isnan(v_p), nan, cov)
-        itt_se, fs_se, cace_se = np.sqrt(v_g), np.sqrt(v_p), np.sqrt(v_b)
-        if clusters is None:
-            ci_df = np.full(k, nan)
-            crit = np.full(k, stats.norm.ppf(0.5 + level / 2.0))
-        else:
-            ci_df = np.where(np.isfinite(n_clusters) & (n_clusters >= 2), n_clusters - 1.0, nan)
-            crit = stats.t.ppf(0.5 + level / 2.0, np.where(np.isfinite(ci_df), ci_df, 1.0))
-            crit = np.where(np.isfinite(ci_df), crit, nan)
-        f = np.where(np.isnan(v_p), nan, pi**2 / np.where(np.isnan(v_p), 1.0, v_p))
+        fin = _finish_variances(v_g, v_p, cov, v_u, factor=factor, pi=pi, defined=has, no_se=no_se,
+                                zero_fs=zero_fs, scales=(scale_g, scale_p, scale_b), n_clusters=n_clusters,
+                                clustered=clusters is not None, level=level)
+        v_g, v_p, cov, itt_se, fs_se, cace_se = fin.v_g, fin.v_p, fin.cov, fin.itt_se, fin.fs_se, fin.cace_se
+        const_y, fixed_d, zero_vb, ci_df, crit, f = fin.const_y, fin.fixed_d, fin.zero_vb, fin.ci_df, fin.crit, fin.f
 
     no_strata = ~invalid_site & (n_strata == 0)
     flags = [

@@ -16,6 +16,7 @@ the per-site ``status`` / ``note`` arrays say why (see
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 from scipy import stats
@@ -154,6 +155,59 @@ def _centred(sum_ab, sum_a, sum_b, n, scale):
 def _positive_or_nan(var, scale):
     """A variance that is (numerically) zero or negative is reported as NaN."""
     return np.where(var > _ZERO_RTOL * scale, var, np.nan)
+
+
+class _FinishedVariances(NamedTuple):
+    v_g: np.ndarray
+    v_p: np.ndarray
+    cov: np.ndarray
+    itt_se: np.ndarray
+    fs_se: np.ndarray
+    cace_se: np.ndarray
+    const_y: np.ndarray
+    fixed_d: np.ndarray
+    zero_vb: np.ndarray
+    ci_df: np.ndarray
+    crit: np.ndarray
+    f: np.ndarray
+
+
+def _finish_variances(v_g, v_p, cov, v_u, *, factor, pi, defined, no_se, zero_fs, scales, n_clusters,
+                      clustered: bool, level: float) -> _FinishedVariances:
+    """Scaled variances, standard errors, degenerate-case flags, critical values and F.
+
+    Shared by the unstratified (:func:`wald_estimates`) and stratified estimators: ``v_*`` are
+    the unscaled variance sums, ``factor`` the HC1 / CR1 small-sample factor, ``v_u`` the CACE
+    residual variance before dividing by ``pi**2``, ``defined`` the sites with both arms,
+    ``no_se`` the sites without standard errors and ``scales`` the raw-moment scales
+    ``(g, p, b)`` against which a variance counts as zero.  Intervals use the normal, or under
+    CR1 t with ``G - 1`` degrees of freedom.
+    """
+    nan = np.nan
+    scale_g, scale_p, scale_b = scales
+    v_g = np.where(no_se, nan, factor * v_g)
+    v_p = np.where(no_se, nan, factor * v_p)
+    cov = np.where(no_se, nan, factor * cov)
+    v_b = np.where(no_se | zero_fs, nan, factor * v_u / np.where(zero_fs | no_se, 1.0, pi) ** 2)
+    const_y = defined & ~no_se & ~(v_g > _ZERO_RTOL * scale_g)
+    fixed_d = defined & ~no_se & ~(v_p > _ZERO_RTOL * scale_p)
+    # v_u (before dividing by pi^2) against its raw-moment scale
+    zero_vb = defined & ~no_se & ~zero_fs & ~(factor * v_u > _ZERO_RTOL * scale_b)
+    v_g = _positive_or_nan(v_g, scale_g)
+    v_p = _positive_or_nan(v_p, scale_p)
+    v_b = np.where(zero_vb, nan, v_b)
+    cov = np.where(np.isnan(v_g) | np.isnan(v_p), nan, cov)
+    k = np.shape(v_g)[0]
+    if not clustered:
+        ci_df = np.full(k, nan)
+        crit = np.full(k, stats.norm.ppf(0.5 + level / 2.0))
+    else:
+        ci_df = np.where(np.isfinite(n_clusters) & (n_clusters >= 2), n_clusters - 1.0, nan)
+        crit = stats.t.ppf(0.5 + level / 2.0, np.where(np.isfinite(ci_df), ci_df, 1.0))
+        crit = np.where(np.isfinite(ci_df), crit, nan)
+    f = np.where(np.isnan(v_p), nan, pi**2 / np.where(np.isnan(v_p), 1.0, v_p))
+    return _FinishedVariances(v_g, v_p, cov, np.sqrt(v_g), np.sqrt(v_p), np.sqrt(v_b), const_y, fixed_d, zero_vb,
+                              ci_df, crit, f)
 
 
 def _cluster_scores(m: SiteMoments, cl: ClusterMoments, ybar: tuple, dbar: tuple):
@@ -401,33 +455,13 @@ def wald_estimates(m: SiteMoments, clusters: ClusterMoments | None = None,
             few_clusters = both_arms & ~small & (min_per_arm < int(min_clusters_per_arm))
 
         no_se = ~both_arms | small | few_clusters
-        v_g = np.where(no_se, nan, factor * v_g)
-        v_p = np.where(no_se, nan, factor * v_p)
-        cov = np.where(no_se, nan, factor * cov)
-        v_b = np.where(no_se | zero_fs, nan, factor * v_u / np.where(zero_fs, 1.0, pi) ** 2)
-
-        const_y = both_arms & ~no_se & ~(v_g > _ZERO_RTOL * scale_g)
-        fixed_d = both_arms & ~no_se & ~(v_p > _ZERO_RTOL * scale_p)
-        # v_u (before dividing by pi^2) against its raw-moment scale
-        zero_vb = both_arms & ~no_se & ~zero_fs & ~(factor * v_u > _ZERO_RTOL * scale_b)
-        v_g = _positive_or_nan(v_g, scale_g)
-        v_p = _positive_or_nan(v_p, scale_p)
-        v_b = np.where(zero_vb, nan, v_b)
-        cov = np.where(np.isnan(v_g) | np.isnan(v_p), nan, cov)
-
-        itt_se = np.sqrt(v_g)
-        fs_se = np.sqrt(v_p)
-        cace_se = np.sqrt(v_b)
-        if clusters is None:
-            ci_df = np.full(k, nan)
-            crit = np.full(k, stats.norm.ppf(0.5 + level / 2.0))
-        else:
-            ci_df = np.where(np.isfinite(n_clusters) & (n_clusters >= 2), n_clusters - 1.0, nan)
-            crit = stats.t.ppf(0.5 + level / 2.0, np.where(np.isfinite(ci_df), ci_df, 1.0))
-            crit = np.where(np.isfinite(ci_df), crit, nan)
+        fin = _finish_variances(v_g, v_p, cov, v_u, factor=factor, pi=pi, defined=both_arms, no_se=no_se,
+                                zero_fs=zero_fs, scales=(scale_g, scale_p, scale_b), n_clusters=n_clusters,
+                                clustered=clusters is not None, level=level)
+        v_g, v_p, cov, itt_se, fs_se, cace_se = fin.v_g, fin.v_p, fin.cov, fin.itt_se, fin.fs_se, fin.cace_se
+        const_y, fixed_d, zero_vb, ci_df, crit, f = fin.const_y, fin.fixed_d, fin.zero_vb, fin.ci_df, fin.crit, fin.f
         ci_lo = beta - crit * cace_se
         ci_hi = beta + crit * cace_se
-        f = np.where(np.isnan(v_p), nan, pi**2 / np.where(np.isnan(v_p), 1.0, v_p))
 
     flags = [
         (invalid, "invalid_moments", "moments are not finite or counts are negative: "
