@@ -324,6 +324,8 @@ def sample_table(con, data: dict, names: list[str]) -> None:
                     "z": pa.array(data["z"].astype(np.int32)),
                     "d": pa.array(data["d"]),
                     "uptake_observed": pa.array(np.ones(n, dtype=bool)),
+                    "in_uptake": pa.array(np.ones(n, dtype=bool)),        # every uptake reported
+                    "outcome_due": pa.array(np.ones(n, dtype=bool)),      # every participant due an outcome
                     "y": y})
     con.register("_sample_arrow", tbl)
     con.execute("CREATE OR REPLACE TEMP TABLE _sample AS SELECT * FROM _sample_arrow")
