@@ -310,3 +310,24 @@ def test_baseline_rate_pools_first_periods():
     assert np.isnan(res.rate[3]) and "no participants" in res.notes[3]
     assert res.notes[0] == "" and res.notes[1]
     assert np.all((res.rate[:3] > 0) & (res.rate[:3] < 1))
+
+
+@pytest.mark.parametrize("p0, odds_ratio, h, q", [(0.1, 1.5, 4.5, 0.1), (0.1, 1 / 1.5, 4.5, 0.9),
+                                                  (0.5, 3.0, 2.0, 0.4), (0.8, 1 / 3.0, 3.0, 0.3)])
+def test_two_point_chain_equals_a_dense_solve_of_the_same_chain(p0, odds_ratio, h, q):
+    """The per-participant chain is built directly in sparse form (speed); check it against the
+    textbook construction solved densely with numpy: L = (I - Q)^-1 1, Q[s, s+U] = q,
+    Q[s, max(0, s-D)] += 1 - q, states >= H absorbing (Brook & Evans 1972)."""
+    from takeup.pipeline.stats.drift import run_length as rl
+
+    u, d, _ = rl._steps(p0, float(shifted_rate(p0, odds_ratio)))
+    grid = rl._grid(u, d, 1e-3, 5000)
+    n = rl._n_states(h, grid.delta)
+    Q = np.zeros((n, n))
+    for s in range(n):
+        if s + grid.up_units < n:
+            Q[s, s + grid.up_units] += q
+        Q[s, max(0, s - grid.down_units)] += 1 - q
+    dense = np.linalg.solve(np.eye(n) - Q, np.ones(n))[0]
+    assert rl._two_point_chain_arl(grid, n, q) == pytest.approx(dense, rel=1e-9)
+    assert rl._chain_arl(grid, n, q) == pytest.approx(dense, rel=1e-9)

@@ -60,9 +60,8 @@ References
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -333,7 +332,7 @@ def calibrate_for_estimated_level(p0: float, p1: float, h_known: float, target_a
 
     def excess(h: float) -> float:           # log expected false-alarm rate over the goal; falls as h grows
         r = rate(h)
-        if not math.isfinite(r):             # an ARL that could not be computed counts as too many alarms
+        if not math.isfinite(r):             # defensive: a rate that is not a number counts as too many alarms
             return math.inf
         return math.log(r / goal) if r > 0 else -math.inf
 
