@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from takeup.pipeline.stats.meta_analysis.leave_one_out import leave_one_out_fits
 from takeup.pipeline.stats.meta_analysis.meta import MetaResult, clean_inputs, combine
 from takeup.pipeline.stats.readonly import readonly_array as _readonly
 
@@ -119,9 +120,10 @@ def site_influence(effects, variances, method: str = "reml") -> InfluenceResult:
     inflating tau2 and pulling mu toward it.  Under the model it is
     approximately standard normal.
 
-    The leave-one-out fits loop over sites: each needs its own tau2 estimate
-    (Fisher scoring or a root-finder), which does not vectorise across
-    different subsets.  Each fit is itself vectorised over sites.  With two
+    The leave-one-out fits run side by side
+    (:func:`~takeup.pipeline.stats.meta_analysis.leave_one_out.leave_one_out_fits`: sums minus
+    the left-out term for ``fixed`` and ``dl``, one vectorised Newton iteration over all subsets
+    for ``reml``, a loop for ``pm``).  With two
     usable sites the leave-one-out fits contain one site, so for
     random-effects methods ``loo_tau2`` and ``std_residual`` are NaN.
 
@@ -145,11 +147,8 @@ def site_influence(effects, variances, method: str = "reml") -> InfluenceResult:
     loo_tau2 = np.full(n_all, np.nan)
     loo_converged = True
     if k >= 2:
-        for j in range(k):  # one tau2 fit per left-out site (see Notes)
-            sub = np.arange(k) != j
-            r = combine(y_ok[sub], v_ok[sub], method=method, summaries=False)
-            loo_est[idx[j]], loo_se[idx[j]], loo_tau2[idx[j]] = r.estimate, r.se, r.tau2
-            loo_converged &= r.converged
+        est, se, tau2, loo_converged = leave_one_out_fits(y_ok, v_ok, method)
+        loo_est[idx], loo_se[idx], loo_tau2[idx] = est, se, tau2
         if not loo_converged:
             notes.append("some leave-one-out tau2 fits did not converge")
         if k == 2 and method != "fixed":
