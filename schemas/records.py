@@ -35,7 +35,7 @@ __all__ = [
     "AssignmentInput", "UptakeInput", "OutcomeInput",
     "AssignmentRow", "AssignmentCovariateRow", "UptakeRow", "OutcomeRow",
     "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow", "ParticipantStateRow", "StateBatchRow",
-    "MomentsPackageRow",
+    "MomentsPackageRow", "DriftLimitRow",
     "INPUT_MODELS", "STORED_MODELS", "STORAGE_TABLES",
 ]
 
@@ -244,6 +244,28 @@ class MomentsPackageRow(_Strict):
                            json_schema_extra={"sql_type": "BLOB"})
 
 
+class DriftLimitRow(_Strict):
+    """Table `drift_limits`: decision limits of the drift charts, computed once and reused by later runs.
+
+    A limit depends only on the chart's design (in-control level, odds ratio, in-control ARL,
+    spread of the level's estimate) and on the algorithm that computed it, never on participant
+    records; a run reads the limits of its own algorithm and adds those it had to compute, in the
+    same transaction as its results.  Deleting rows only makes the next run slower.
+    """
+
+    algorithm: str = Field(description="Algorithm and tolerances that computed the limit (a change computes anew).")
+    calibration: Literal["known_level", "estimated_level"] = Field(
+        description="known_level: designed as if the level were known; estimated_level: raised for its estimate.")
+    p0: float = Field(description="In-control level the chart is designed at (rounded on the logit scale).")
+    odds_ratio: float = Field(description="Shift in the odds of uptake the chart is designed to detect.")
+    target_arl0: float = Field(description="Designed in-control average run length, in participants.")
+    logit_sd: float = Field(description="Spread (logit scale, rounded) of the level's estimate; 0 for known_level.")
+    h: Optional[float] = Field(default=None, description="Decision limit; null when no limit could be designed.")
+    note: str = Field(description="Empty, or why the design has no limit.")
+    computed_at: datetime = Field(description="When the limit was computed (UTC).")
+    run_id: str = Field(description="Run that computed it.")
+
+
 STORED_MODELS: dict[str, type[_Strict]] = {
     "assignment": AssignmentRow,
     "uptake": UptakeRow,
@@ -263,6 +285,7 @@ STORAGE_TABLES: dict[str, type[_Strict]] = {
     "participant_state": ParticipantStateRow,
     "participant_state_batches": StateBatchRow,
     "moments_packages": MomentsPackageRow,
+    "drift_limits": DriftLimitRow,
 }
 
 #: record kind -> table name

@@ -19,7 +19,7 @@ import pytest
 
 from takeup.pipeline.stats.drift.chart import shifted_rate
 from takeup.pipeline.run.inputs import RunContext, RunInputs
-from takeup.pipeline.run.trend_rows import compute_trends, detect_drift, round_level
+from takeup.pipeline.run.trend_rows import compute_trends as _compute_trends, detect_drift, round_level, trend_records
 from takeup.schemas.config import StudyConfig
 from takeup.schemas.results import UptakeTrendRow
 
@@ -35,6 +35,12 @@ def counts_frame(rows) -> pd.DataFrame:
     return pd.DataFrame(
         [(s, z, pd.Timestamp(week(p)), a, o, t) for s, z, p, a, o, t in rows],
         columns=["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"])
+
+
+def compute_trends(inputs, ctx):
+    """The stage's rows as records (dicts, nulls as None) and its drift charts."""
+    rows, drift = _compute_trends(inputs, ctx)
+    return trend_records(rows), drift
 
 
 def make_inputs(cohort: pd.DataFrame, calendar: pd.DataFrame | None = None) -> RunInputs:

@@ -15,9 +15,11 @@ from dataclasses import dataclass, field, replace
 from datetime import date, datetime, timedelta, timezone
 
 import duckdb
+import numpy as np
 import pandas as pd
 
 from takeup.pipeline.participant_state import basis_for, refresh_state
+from takeup.pipeline.run.drift_limits import load_limits
 from takeup.pipeline.run.adjusted_sql import AdjustedMoments, adjusted_moments
 from takeup.pipeline.run.strata_sql import collect_strata
 from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, cluster_moments, covariate_cells,
@@ -110,6 +112,7 @@ class RunInputs:
     stratum_counts: pd.DataFrame = field(default_factory=pd.DataFrame)    # site x stratum x arm: assigned, clusters,
                                                                           # declared probability
     stratum_covariate_cells: pd.DataFrame = field(default_factory=pd.DataFrame)  # site x stratum x covariate x (z, d)
+    drift_limits: pd.DataFrame = field(default_factory=pd.DataFrame)     # drift-chart limits stored by earlier runs
 
     @property
     def stratified_sites(self) -> tuple[str, ...]:
@@ -119,20 +122,23 @@ class RunInputs:
         return tuple(sorted(self.stratum_counts.site_id.astype(str).unique()))
 
 
-#: the fields of :class:`RunInputs` read from the warehouse that *stores results* (the alert lifecycle and
-#: the running intersection of the sequences), not from the participant records; every other field is an
-#: aggregate of the records (see :func:`collect_aggregates`)
-CENTRAL_STATE_FIELDS = ("previous_alerts", "previous_run_id", "previous_sequences", "previous_pooled_sequences")
+#: the fields of :class:`RunInputs` read from the warehouse that *stores results* (the alert lifecycle, the
+#: running intersection of the sequences and the drift-chart limits already computed), not from the
+#: participant records; every other field is an aggregate of the records (see :func:`collect_aggregates`)
+CENTRAL_STATE_FIELDS = ("previous_alerts", "previous_run_id", "previous_sequences", "previous_pooled_sequences",
+                        "drift_limits")
 
 
 @dataclass(frozen=True)
 class CentralState:
-    """What a run reads from earlier runs: the previous finished run's alerts and sequence state."""
+    """What a run reads from earlier runs: the previous finished run's alerts and sequence state, and the
+    drift-chart limits computed so far (:mod:`takeup.pipeline.run.drift_limits`)."""
 
     previous_alerts: pd.DataFrame
     previous_run_id: str | None
     previous_sequences: pd.DataFrame
     previous_pooled_sequences: pd.DataFrame
+    drift_limits: pd.DataFrame
 
 
 def input_fingerprint(con: duckdb.DuckDBPyConnection, data_cutoff: datetime) -> tuple[str, int]:
@@ -172,32 +178,51 @@ def _cluster_cohort_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, orig
     """, {"origin": origin, "period_days": ctx.config.trends.period_days}).df()
 
 
+def _period_index_sql(col: str) -> str:
+    """Index (0, 1, ...) of the ``$period_days`` period containing ``col``, counted from ``$origin``
+    (dates on or after the origin; integer day arithmetic, no per-row date construction)."""
+    return f"(({col} - CAST($origin AS DATE)) // $period_days)"
+
+
+def _period_starts(index: pd.Series, origin: date, period: int) -> pd.Series:
+    """First day of each period index, as the DATE column DuckDB would have returned."""
+    days = index.to_numpy(dtype="int64") * period
+    return pd.Series(np.datetime64(origin, "D") + days.astype("timedelta64[D]"), index=index.index).astype(
+        "datetime64[us]")
+
+
 def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date | None
                   ) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Cohort counts per site x arm x period and the calendar basis, in two scans of the participants.
+
+    The cohort query gives each period's assignments, uptake reports and uptakes; the calendar
+    basis needs in addition the per-period counts of first uptake reports and first reports of
+    uptake (one more scan), cumulated over the (small) period grid: no participant x period join.
+    Periods are grouped by their integer index and turned into dates on the small result.
+    """
     period = ctx.config.trends.period_days
+    cols = ["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"]
     if origin is None:
-        empty = pd.DataFrame(columns=["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"])
+        empty = pd.DataFrame(columns=cols)
         return empty, empty.copy()
     params = {"origin": origin, "period_days": period}
     cohort = con.execute(f"""
-        SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
+        SELECT site_id, z, {_period_index_sql('assigned_on')} AS period_index,
                count(*) AS n_assigned, count(*) FILTER (WHERE uptake_observed) AS n_observed,
                CAST(sum(d) AS BIGINT) AS n_taken_up
         FROM _participants GROUP BY ALL ORDER BY ALL
     """, params).df()
-    # calendar basis: status at the end of each period among those assigned by then.  Computed from
-    # per-period counts of assignments, first uptake reports and first "took up" reports, then
-    # cumulated over the (small) period grid: no participant x period join.
-    events = con.execute(f"""
-        SELECT site_id, z, CAST({_period_start_sql('assigned_on')} AS DATE) AS period_start,
-               count(*) AS n_assigned, 0 AS n_observed, 0 AS n_taken_up FROM _participants GROUP BY ALL
-        UNION ALL
-        SELECT site_id, z, CAST({_period_start_sql('first_obs')} AS DATE), 0, count(*), 0
+    cohort.insert(2, "period_start", _period_starts(cohort.pop("period_index"), origin, period))
+    firsts = con.execute(f"""
+        SELECT site_id, z, {_period_index_sql('first_obs')} AS period_index, 0 AS n_assigned, count(*) AS n_observed,
+               0 AS n_taken_up
         FROM _participants WHERE first_obs IS NOT NULL GROUP BY ALL
         UNION ALL
-        SELECT site_id, z, CAST({_period_start_sql('first_yes')} AS DATE), 0, 0, count(*)
+        SELECT site_id, z, {_period_index_sql('first_yes')}, 0, 0, count(*)
         FROM _participants WHERE first_yes IS NOT NULL GROUP BY ALL
     """, params).df()
+    firsts.insert(2, "period_start", _period_starts(firsts.pop("period_index"), origin, period))
+    events = pd.concat([cohort[cols[:4]].assign(n_observed=0, n_taken_up=0), firsts[cols]], ignore_index=True)
     calendar = _cumulate_calendar(events, origin, ctx.as_of, period)
     return cohort, calendar
 
@@ -224,10 +249,12 @@ def _cumulate_calendar(events: pd.DataFrame, origin: date, as_of: date, period: 
 def _site_activity(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> pd.DataFrame:
     return con.execute("""
         WITH ok AS (SELECT batch_id, received_at FROM batches WHERE status = 'loaded' AND received_at <= $cutoff),
-        rec AS (
-            SELECT site_id, batch_id, assigned_on AS d FROM assignments WHERE assigned_on <= $as_of
-            UNION ALL SELECT site_id, batch_id, observed_on FROM uptake_events WHERE observed_on <= $as_of
-            UNION ALL SELECT site_id, batch_id, measured_on FROM outcome_measurements WHERE measured_on <= $as_of
+        rec AS (      -- per table, site and batch first (small), then across tables
+            SELECT site_id, batch_id, max(assigned_on) AS d FROM assignments WHERE assigned_on <= $as_of GROUP BY ALL
+            UNION ALL SELECT site_id, batch_id, max(observed_on) FROM uptake_events WHERE observed_on <= $as_of
+            GROUP BY ALL
+            UNION ALL SELECT site_id, batch_id, max(measured_on) FROM outcome_measurements
+            WHERE measured_on <= $as_of GROUP BY ALL
         )
         SELECT rec.site_id, max(rec.d) AS last_record_on, max(ok.received_at) AS last_received_at,
                count(DISTINCT rec.batch_id) AS n_batches
@@ -269,11 +296,12 @@ def prepare_state(con: duckdb.DuckDBPyConnection, config: StudyConfig) -> str:
 
 
 def central_state(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> CentralState:
-    """The previous finished run's alerts and sequence state (read from the results, not the records)."""
+    """The previous finished run's alerts and sequence state, and the stored drift-chart limits
+    (read from the results, not the records)."""
     prev_id, prev = _previous_alerts(con, ctx)
     prev_site_seq, prev_pooled_seq = _previous_sequences(con, prev_id)
     return CentralState(previous_alerts=prev, previous_run_id=prev_id, previous_sequences=prev_site_seq,
-                        previous_pooled_sequences=prev_pooled_seq)
+                        previous_pooled_sequences=prev_pooled_seq, drift_limits=load_limits(con))
 
 
 def with_central_state(inputs: RunInputs, state: CentralState) -> RunInputs:

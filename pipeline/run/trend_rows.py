@@ -73,7 +73,6 @@ References
 
 from __future__ import annotations
 
-import functools
 from dataclasses import dataclass, field, replace
 from datetime import date
 
@@ -83,27 +82,19 @@ import pandas as pd
 from takeup.pipeline.stats.drift.baseline import baseline_rate
 from takeup.pipeline.stats.drift.chart import bernoulli_cusum, shifted_rate
 from takeup.pipeline.stats.drift.clustering import design_effects, icc_anova
-from takeup.pipeline.stats.drift.design import calibrate_for_estimated_level, design_cusum
 from takeup.pipeline.stats.drift.run_length import arl_bernoulli
 from takeup.pipeline.stats.drift.shrinkage import shrink_rates
+from takeup.pipeline.run.drift_limits import DESIGN_REL_TOL, LimitBook, design_limit
 from takeup.pipeline.run.inputs import RunContext, RunInputs
-from takeup.pipeline.run.site_rows import clean
 from takeup.pipeline.stats.readonly import readonly_array as _readonly
+from takeup.schemas.results import UptakeTrendRow
 
 __all__ = ["DriftResult", "compute_trends", "trend_rows", "detect_drift", "closed_cohort_counts", "ARMS_BY_Z",
-           "DESIGN_REL_TOL", "ClusterDriftCounts", "cluster_drift_counts", "detect_cluster_drift",
+           "DESIGN_REL_TOL", "trend_records", "ClusterDriftCounts", "cluster_drift_counts", "detect_cluster_drift",
            "closed_cohort_clusters"]
 
 #: arm label by assignment indicator z (0 control, 1 treatment)
 ARMS_BY_Z: tuple[str, str] = ("control", "treatment")
-
-#: Discretisation tolerance passed to :func:`design_cusum`.  The module default
-#: (1e-7) costs about 1 s per chart; 1e-5 costs about 0.1 s and, for the
-#: default shift (odds ratio 3, ARL0 2000) at p0 in 0.02-0.12, moved h by less
-#: than 1e-3 and left the in-control ARL unchanged to 5 digits (checked when
-#: this module was written).  The chain error bound is ``k * rel_tol * max(u, d)``
-#: after ``k`` large steps (see the cusum module), far below any practical h.
-DESIGN_REL_TOL = 1e-4   # rational approximation of the score grid; designs stay at or above the target ARL0
 
 _COUNT_COLUMNS = ("n_assigned", "n_observed", "n_taken_up")
 
@@ -156,6 +147,9 @@ class DriftResult:
     icc : ndarray
         Intra-cluster correlation of the series' arm used for the design effects (NaN on
         the participant unit).
+    computed_limits : tuple of dict
+        Decision limits this run had to compute (not found among the stored ones), as rows for
+        ``drift_limits`` (:func:`takeup.pipeline.run.drift_limits.store_limits`).
 
     References
     ----------
@@ -187,6 +181,7 @@ class DriftResult:
     n_monitored: np.ndarray = field(default_factory=lambda: _readonly([]))
     unit: str = "participant"
     icc: np.ndarray = field(default_factory=lambda: _readonly([]))
+    computed_limits: tuple[dict, ...] = ()
 
     def index(self, site_id: str, arm: str) -> int | None:
         """Position of the series ``(site_id, arm)``, or None when absent."""
@@ -236,7 +231,7 @@ def _grid(frame: pd.DataFrame) -> pd.DataFrame:
 
 def trend_rows(frame: pd.DataFrame, basis: str, run_id: str,
                cusum_values: np.ndarray | None = None, cusum_limits: np.ndarray | None = None
-               ) -> tuple[pd.DataFrame, list[dict]]:
+               ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """``uptake_trends`` rows of one basis (see the module docstring).
 
     Parameters
@@ -254,12 +249,14 @@ def trend_rows(frame: pd.DataFrame, basis: str, run_id: str,
     grid : DataFrame
         The zero-filled site x arm x period grid the rows are built from
         (same order as the rows).
-    rows : list of dict
-        Rows with exactly the ``UptakeTrendRow`` columns.
+    rows : DataFrame
+        Rows with exactly the ``UptakeTrendRow`` columns, one per grid row; NaN is null
+        (:func:`trend_records` turns them into dicts).  A frame, not dicts: a run of a thousand
+        sites writes about a hundred thousand trend rows.
     """
     g = _grid(_normalise(frame))
     if g.empty:
-        return g, []
+        return g, pd.DataFrame(columns=list(UptakeTrendRow.model_fields))
     x = g["n_taken_up"].to_numpy(float)
     n = g["n_observed"].to_numpy(float)
     share = _share(x, n)
@@ -268,13 +265,20 @@ def trend_rows(frame: pd.DataFrame, basis: str, run_id: str,
         cum = _share(grp["n_taken_up"].cumsum().to_numpy(float), grp["n_observed"].cumsum().to_numpy(float))
     else:
         cum = share.copy()
-    # first stage per site x period: arms side by side
-    key = g["site_id"].astype(str) + "|" + g["period_start"].astype(str)
+    # first stage per site x period: arms side by side (the grid holds exactly one row per site x
+    # period x arm, so each arm's value is scattered to its site x period cell and gathered back)
+    site_code = pd.factorize(g["site_id"])[0]
+    period_code, periods = pd.factorize(g["period_start"])
+    cell = site_code.astype(np.int64) * max(len(periods), 1) + period_code
     is_t = g["z"].to_numpy() == 1
-    t_share = pd.Series(np.where(is_t, share, np.nan)).groupby(key.to_numpy()).transform("max").to_numpy()
-    c_share = pd.Series(np.where(~is_t, share, np.nan)).groupby(key.to_numpy()).transform("max").to_numpy()
-    t_n = pd.Series(np.where(is_t, n, 0.0)).groupby(key.to_numpy()).transform("sum").to_numpy()
-    c_n = pd.Series(np.where(~is_t, n, 0.0)).groupby(key.to_numpy()).transform("sum").to_numpy()
+
+    def by_cell(values: np.ndarray, arm: np.ndarray, fill: float) -> np.ndarray:
+        out = np.full(int(cell.max()) + 1, fill)
+        out[cell[arm]] = values[arm]
+        return out[cell]
+
+    t_share, c_share = by_cell(share, is_t, np.nan), by_cell(share, ~is_t, np.nan)
+    t_n, c_n = by_cell(n, is_t, 0.0), by_cell(n, ~is_t, 0.0)
     both = np.isfinite(t_share) & np.isfinite(c_share)
     fs = np.where(both, t_share - c_share, np.nan)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -283,16 +287,25 @@ def trend_rows(frame: pd.DataFrame, basis: str, run_id: str,
     fs_se = np.where(both, np.sqrt(np.maximum(var, 0.0)), np.nan)
     cv = np.full(len(g), np.nan) if cusum_values is None else np.asarray(cusum_values, float)
     cl = np.full(len(g), np.nan) if cusum_limits is None else np.asarray(cusum_limits, float)
-    rows = [
-        {"run_id": run_id, "site_id": s, "arm": ARMS_BY_Z[z], "basis": basis, "period_start": p,
-         "n_assigned": int(na), "n_taken_up": int(nt), "uptake_share": clean(sh),
-         "cumulative_uptake_share": clean(cu), "first_stage": clean(f), "first_stage_se": clean(fse),
-         "cusum": clean(c), "cusum_limit": clean(lim)}
-        for s, z, p, na, nt, sh, cu, f, fse, c, lim in zip(
-            g["site_id"], g["z"], g["period_start"], g["n_assigned"], g["n_taken_up"], share, cum, fs, fs_se,
-            cv, cl)
-    ]
+    rows = pd.DataFrame({
+        "run_id": run_id, "site_id": g["site_id"].to_numpy(object),
+        "arm": np.asarray(ARMS_BY_Z, dtype=object)[g["z"].to_numpy(int)], "basis": basis,
+        "period_start": g["period_start"].to_numpy(object),
+        "n_assigned": g["n_assigned"].to_numpy("int64"), "n_taken_up": g["n_taken_up"].to_numpy("int64"),
+        "uptake_share": _finite(share), "cumulative_uptake_share": _finite(cum), "first_stage": _finite(fs),
+        "first_stage_se": _finite(fs_se), "cusum": _finite(cv), "cusum_limit": _finite(cl)})
     return g, rows
+
+
+def _finite(a: np.ndarray) -> np.ndarray:
+    """Floats with NaN for anything not finite (NaN is the frame's null: never inf in a table)."""
+    a = np.asarray(a, dtype=float)
+    return np.where(np.isfinite(a), a, np.nan)
+
+
+def trend_records(rows: pd.DataFrame) -> list[dict]:
+    """``uptake_trends`` rows as dicts, nulls as None (for readers that want records, e.g. tests)."""
+    return rows.astype(object).where(rows.notna(), None).to_dict("records")
 
 
 def _empty_drift() -> DriftResult:
@@ -319,33 +332,10 @@ def round_level(p):
         return np.where(np.isfinite(logit), 1.0 / (1.0 + np.exp(-np.round(logit / LOGIT_STEP) * LOGIT_STEP)), np.nan)
 
 
-@functools.lru_cache(maxsize=4096)
-def _design_h(p0: float, odds_ratio: float, target_arl0: float) -> tuple[float, str]:
-    d = design_cusum(np.array([p0]), shift_odds_ratio=np.array([odds_ratio]), target_arl0=float(target_arl0),
-                     rel_tol=DESIGN_REL_TOL)
-    return float(np.asarray(d.h)[0]), d.notes[0]
-
-
 #: the estimation error of an in-control level is rounded to this step (logit scale) before the
-#: limit is calibrated, so that a run calibrates a few dozen distinct charts at most (cached)
+#: limit is calibrated, so that a run calibrates a few dozen distinct charts at most (each limit is
+#: computed once and kept in the warehouse, see :mod:`takeup.pipeline.run.drift_limits`)
 LOGIT_SD_STEP = 0.02
-
-
-#: discretisation tolerance of the Markov chains behind the calibration for an estimated level:
-#: coarser than the design's (the calibration averages over an uncertain level whose spread is
-#: itself rounded to LOGIT_SD_STEP); it moves the calibrated limit by about 0.2% and makes the
-#: calibration about three times faster, which matters because a run calibrates one chart per
-#: distinct (level, spread) -- up to a few hundred with many heterogeneous sites
-CALIBRATION_REL_TOL = 1e-3
-
-
-@functools.lru_cache(maxsize=4096)
-def _calibrated_h(p0: float, odds_ratio: float, target_arl0: float, logit_sd: float) -> float:
-    h, _ = _design_h(p0, odds_ratio, target_arl0)
-    if not np.isfinite(h):
-        return h
-    p1 = float(shifted_rate(np.array([p0]), np.array([odds_ratio]))[0])
-    return calibrate_for_estimated_level(p0, p1, h, target_arl0, logit_sd, rel_tol=CALIBRATION_REL_TOL)
 
 
 def level_logit_sd(p0, n_baseline, weight=None, prior_mean=None, n_arm=None) -> np.ndarray:
@@ -370,7 +360,8 @@ def level_logit_sd(p0, n_baseline, weight=None, prior_mean=None, n_arm=None) -> 
 
 
 def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio: float,
-                 target_arl0: float, baseline: str = "shrunk", calibration: str = "estimated_level") -> DriftResult:
+                 target_arl0: float, baseline: str = "shrunk", calibration: str = "estimated_level",
+                 limits: LimitBook | None = None) -> DriftResult:
     """One-sided Bernoulli CUSUM per site x arm on cohort counts.
 
     Parameters
@@ -393,6 +384,10 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
         that the expected per-participant false-alarm rate, over the estimation error of the
         level (:func:`level_logit_sd`), is ``1 / target_arl0``; ``known_level``: ``h`` designed as
         if the level were known.
+    limits : LimitBook, optional
+        Limits already known (a run passes those stored in the warehouse); the ones computed
+        here are added to it and listed in the result's ``computed_limits``.  Default: a fresh
+        book (limits are still memoised within the process).
 
     Returns
     -------
@@ -461,12 +456,13 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
 
     h = np.full(n_series, np.nan)
     design_notes = [""] * n_series
-    for pos in np.flatnonzero(ok):     # cached per distinct (p0, odds ratio): a few dozen designs at most
+    book = limits if limits is not None else LimitBook()
+    for pos in np.flatnonzero(ok):     # one limit per distinct design: read, or computed once (see drift_limits)
         key = (round(float(p0[pos]), 6), float(ors[pos]), float(target_arl0))
-        h[pos], design_notes[pos] = _design_h(*key)
+        h[pos], design_notes[pos] = book.design(*key)
         if calibration == "estimated_level" and np.isfinite(sd[pos]) and np.isfinite(h[pos]):
             s_r = round(round(float(sd[pos]) / LOGIT_SD_STEP) * LOGIT_SD_STEP, 6)
-            h[pos] = _calibrated_h(*key, s_r)
+            h[pos] = book.calibrated(*key, s_r)
 
     chart = bernoulli_cusum(np.where(monitored, x, 0.0), np.where(monitored, n, 0.0), p0, p1, h)
     stat = np.array(chart.statistic, dtype=float)
@@ -515,6 +511,7 @@ def detect_drift(cohort_counts: pd.DataFrame, baseline_periods: int, odds_ratio:
         path=_readonly(path), notes=tuple(notes),
         n_monitored=_readonly(np.where(monitored, n, 0.0).sum(axis=1)),
         icc=_readonly(np.full(n_series, np.nan)),
+        computed_limits=book.computed_rows(),
     )
 
 
@@ -541,7 +538,7 @@ def drift_design_rows(odds_ratio: float, target_arl0: float, levels=DOCUMENTED_L
     for arm, p0 in levels:
         orr = float(odds_ratio) if arm == "control" else 1.0 / float(odds_ratio)
         p0d = float(round_level(np.array([p0]))[0])
-        h, _ = _design_h(round(p0d, 6), orr, float(target_arl0))
+        h, _ = design_limit(round(p0d, 6), orr, float(target_arl0))
         p1 = float(shifted_rate(np.array([p0d]), np.array([orr]))[0])
         arls = {}
         for key, truth in (("arl0", p0d), ("arl1", p1)):
@@ -670,7 +667,7 @@ def cluster_drift_counts(cluster_counts: pd.DataFrame, baseline_periods: int) ->
 
 def detect_cluster_drift(cluster_counts: pd.DataFrame, baseline_periods: int, odds_ratio: float,
                          target_arl0: float, baseline: str = "shrunk",
-                         calibration: str = "estimated_level") -> DriftResult:
+                         calibration: str = "estimated_level", limits: LimitBook | None = None) -> DriftResult:
     """Drift charts on cluster-level cohort summaries (cluster randomisation).
 
     :func:`cluster_drift_counts` turns the clusters into effective counts; :func:`detect_drift`
@@ -684,7 +681,7 @@ def detect_cluster_drift(cluster_counts: pd.DataFrame, baseline_periods: int, od
     """
     summary = cluster_drift_counts(cluster_counts, baseline_periods)
     drift = detect_drift(summary.counts, baseline_periods, odds_ratio, target_arl0, baseline=baseline,
-                         calibration=calibration)
+                         calibration=calibration, limits=limits)
     arms = [1 if a == "treatment" else 0 for a in drift.arm]
     rho = np.array([summary.icc[a].rho if a in summary.icc else np.nan for a in arms])
     notes = []
@@ -705,7 +702,7 @@ def closed_cohort_clusters(cluster_counts: pd.DataFrame, as_of: date, period_day
     return cluster_counts[(last_due <= pd.Timestamp(as_of)).to_numpy()].reset_index(drop=True)
 
 
-def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], DriftResult]:
+def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[pd.DataFrame, DriftResult]:
     """``uptake_trends`` rows (cohort and calendar bases) and the drift charts.
 
     Parameters
@@ -718,8 +715,8 @@ def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], Drif
 
     Returns
     -------
-    rows : list of dict
-        Rows with exactly the ``UptakeTrendRow`` columns, cohort basis first.
+    rows : DataFrame
+        Rows with exactly the ``UptakeTrendRow`` columns, cohort basis first (NaN is null).
     drift : DriftResult
         One chart per site x arm of the cohort basis.
 
@@ -730,16 +727,17 @@ def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], Drif
        Quality Technology* 31(1), 87-108.
     """
     a = ctx.config.alerts
+    book = LimitBook.from_frame(inputs.drift_limits)      # limits stored by earlier runs
     closed = closed_cohort_counts(inputs.cohort_counts, ctx.as_of, ctx.config.trends.period_days,
                                   ctx.config.trends.uptake_window_days)
     if ctx.config.randomisation_unit == "cluster" and inputs.cluster_cohort_counts is not None:
         closed_clusters = closed_cohort_clusters(inputs.cluster_cohort_counts, ctx.as_of,
                                                  ctx.config.trends.period_days, ctx.config.trends.uptake_window_days)
         drift = detect_cluster_drift(closed_clusters, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
-                                     baseline=a.drift_baseline, calibration=a.drift_calibration)
+                                     baseline=a.drift_baseline, calibration=a.drift_calibration, limits=book)
     else:
         drift = detect_drift(closed, a.drift_baseline_periods, a.drift_odds_ratio, a.drift_arl0,
-                             baseline=a.drift_baseline, calibration=a.drift_calibration)
+                             baseline=a.drift_baseline, calibration=a.drift_calibration, limits=book)
     grid = _grid(_normalise(inputs.cohort_counts))
     cv = cl = None
     if len(grid) and len(drift.site_id):
@@ -754,4 +752,6 @@ def compute_trends(inputs: RunInputs, ctx: RunContext) -> tuple[list[dict], Drif
         cl = np.where(np.isfinite(cv), np.asarray(drift.h)[si_i], np.nan)
     _, cohort_rows = trend_rows(inputs.cohort_counts, "cohort", ctx.run_id, cv, cl)
     _, calendar_rows = trend_rows(inputs.calendar_counts, "calendar", ctx.run_id)
-    return cohort_rows + calendar_rows, drift
+    parts = [f for f in (cohort_rows, calendar_rows) if len(f)]
+    rows = pd.concat(parts, ignore_index=True) if parts else cohort_rows
+    return rows, drift

@@ -17,9 +17,13 @@ from importlib import metadata
 from typing import Any
 
 import duckdb
+import numpy as np
+import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from takeup.pipeline.run.abandoned import mark_abandoned_runs, process_owner
+from takeup.pipeline.run.drift_limits import store_limits
 from takeup.pipeline.run.inputs import RunContext, RunInputs
 from takeup.pipeline.warehouse import store_config, transaction
 from takeup.schemas.ddl import columns_of
@@ -44,7 +48,7 @@ class RunResults:
     pooled_estimates: list[dict] = field(default_factory=list)
     subgroup_tests: list[dict] = field(default_factory=list)
     site_influence: list[dict] = field(default_factory=list)
-    uptake_trends: list[dict] = field(default_factory=list)
+    uptake_trends: list[dict] | pd.DataFrame = field(default_factory=list)   # a frame from the trends stage
     alerts: list[dict] = field(default_factory=list)
     precision_forecasts: list[dict] = field(default_factory=list)
     drift: Any = None   # the trends stage's drift charts, read by the alerts stage (not written)
@@ -65,20 +69,29 @@ class RunSummary:
     missing_uptake: str | None = None     # one line on participants without an uptake report
 
 
-def _arrow_table(table: str, rows: list[dict]) -> pa.Table:
+_ARROW_TYPES = {"VARCHAR": pa.string(), "BIGINT": pa.int64(), "DOUBLE": pa.float64(), "BOOLEAN": pa.bool_(),
+                "DATE": pa.date32(), "TIMESTAMP": pa.timestamp("us")}
+
+
+def _arrow_table(table: str, rows: list[dict] | pd.DataFrame) -> pa.Table:
+    """The rows of one result table as Arrow, typed by the table's model.
+
+    ``rows`` is a list of dicts (None is null; a NaN or infinite float is a bug and refused) or,
+    for tables of many rows, a DataFrame whose columns are a subset of the model's (NaN is null;
+    an infinite value is refused).  Unknown columns are refused either way.
+    """
     model = RESULT_TABLES[table]
-    types = {"VARCHAR": pa.string(), "BIGINT": pa.int64(), "DOUBLE": pa.float64(), "BOOLEAN": pa.bool_(),
-             "DATE": pa.date32(), "TIMESTAMP": pa.timestamp("us")}
     cols = columns_of(model)
-    schema = pa.schema([pa.field(c.name, types[c.sql_type]) for c in cols])
+    schema = pa.schema([pa.field(c.name, _ARROW_TYPES[c.sql_type]) for c in cols])
     names = [c.name for c in cols]
+    if isinstance(rows, pd.DataFrame):
+        return _arrow_from_frame(table, rows, cols, schema)
     for r in rows:
         extra = set(r) - set(names)
         if extra:
             raise ValueError(f"{table}: unexpected column(s) {sorted(extra)}")
     data = {n: [r.get(n) for r in rows] for n in names}
     out = pa.Table.from_pydict(data, schema=schema)
-    import pyarrow.compute as pc
     for c in cols:
         if c.sql_type == "DOUBLE":
             col = out.column(c.name)
@@ -87,15 +100,41 @@ def _arrow_table(table: str, rows: list[dict]) -> pa.Table:
     return out
 
 
+def _arrow_from_frame(table: str, frame: pd.DataFrame, cols, schema: pa.Schema) -> pa.Table:
+    names = [c.name for c in cols]
+    extra = set(frame.columns) - set(names)
+    if extra:
+        raise ValueError(f"{table}: unexpected column(s) {sorted(extra)}")
+    arrays = []
+    for c, f in zip(cols, schema):
+        if c.name not in frame.columns:
+            arrays.append(pa.nulls(len(frame), type=f.type))
+            continue
+        values = frame[c.name]
+        if c.sql_type == "DOUBLE":
+            x = values.to_numpy(dtype=float, na_value=np.nan)
+            if np.isinf(x).any():
+                raise ValueError(f"{table}.{c.name}: infinite value reached the writer")
+            arrays.append(pa.array(x, type=f.type, from_pandas=True))
+        else:
+            arrays.append(pa.array(values.to_numpy(dtype=object), type=f.type, from_pandas=True))
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
 def write_results(con: duckdb.DuckDBPyConnection, ctx: RunContext, results: RunResults) -> dict:
-    """Append every result table of the run in one transaction; returns row counts."""
+    """Append every result table of the run, and the drift limits it computed, in one transaction.
+
+    Returns row counts per result table.
+    """
     counts = {}
     with transaction(con):
+        if results.drift is not None and results.drift.computed_limits:
+            store_limits(con, results.drift.computed_limits, ctx.run_id)
         for table in ("site_estimates", "complier_profile", "pooled_estimates", "subgroup_tests",
                       "site_influence", "uptake_trends", "alerts", "precision_forecasts"):
             rows = getattr(results, table)
             counts[table] = len(rows)
-            if not rows:
+            if len(rows) == 0:
                 continue
             arrow = _arrow_table(table, rows)
             con.register("_result_rows", arrow)
