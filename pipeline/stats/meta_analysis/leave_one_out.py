@@ -9,7 +9,7 @@ summaries=False)`` returns, without a Python loop over sites:
 * ``reml``: the safeguarded Newton iteration of :func:`~takeup.pipeline.stats.meta_analysis.meta.
   _tau2_reml` runs for all subsets side by side on a subsets x sites weight matrix (blocks of
   subsets, so memory stays bounded), with each subset's own bracket, step rule and stopping
-  rule, so each subset follows exactly the scalar iteration;
+  rule, started at the REML tau2 of all sites;
 * ``pm`` (a root search per subset) falls back to the loop.
 
 The results equal the loop's up to floating-point summation order and the stopping tolerance of
@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from takeup.pipeline.stats.meta_analysis.meta import _REML_MAXITER, _REML_RTOL, combine
+from takeup.pipeline.stats.meta_analysis.meta import _REML_MAXITER, _REML_RTOL, _tau2_dl, _tau2_reml, combine
 
 __all__ = ["leave_one_out_fits"]
 
@@ -62,36 +62,69 @@ def _dl_tau2(y: np.ndarray, v: np.ndarray) -> np.ndarray:
 
 
 def _reml_scores(y, v, tau2, rows):
-    """Restricted score, Fisher and observed information of the subsets ``rows`` at ``tau2``."""
+    """Restricted score, Fisher and observed information of the subsets ``rows`` at ``tau2``.
+
+    Every sum over a subset is a power sum ``sum_i w_ij^p y_i^q`` (p = 1..3, q = 0..2), taken as
+    matrix products of the weight powers with ``[1, y, y^2]``; the residual sums follow by
+    expanding ``r = y - mu_j``.  The effects arrive centred near the pooled mean (see
+    :func:`leave_one_out_fits`), so ``mu_j`` is small and the expansion loses no accuracy.
+    """
     w = 1.0 / (v[None, :] + tau2[:, None])
     w[np.arange(rows.size), rows] = 0.0           # leave site j out of subset j
-    sw = w.sum(axis=1)
-    mu = (w @ y) / sw
-    r = y[None, :] - mu[:, None]
+    powers = np.column_stack([np.ones_like(y), y, y * y])
+    s1 = w @ powers
     w2 = w * w
-    w3 = w2 * w
-    s2 = w2.sum(axis=1)
-    rr = r * r
-    tr_p = sw - s2 / sw
-    fisher = 0.5 * (s2 - 2.0 * w3.sum(axis=1) / sw + (s2 / sw) ** 2)
-    score = 0.5 * ((w2 * rr).sum(axis=1) - tr_p)
-    observed = (w3 * rr).sum(axis=1) - (w2 * r).sum(axis=1) ** 2 / sw - fisher
+    s2 = w2 @ powers
+    w2 *= w                                       # now w^3
+    s3 = w2 @ powers
+    sw = s1[:, 0]
+    mu = s1[:, 1] / sw
+    w2_r2 = s2[:, 2] - 2.0 * mu * s2[:, 1] + mu * mu * s2[:, 0]
+    w3_r2 = s3[:, 2] - 2.0 * mu * s3[:, 1] + mu * mu * s3[:, 0]
+    w2_r = s2[:, 1] - mu * s2[:, 0]
+    tr_p = sw - s2[:, 0] / sw
+    fisher = 0.5 * (s2[:, 0] - 2.0 * s3[:, 0] / sw + (s2[:, 0] / sw) ** 2)
+    score = 0.5 * (w2_r2 - tr_p)
+    observed = w3_r2 - w2_r ** 2 / sw - fisher
     return score, fisher, observed
 
 
+def _score_at_zero(y: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Restricted score at tau2 = 0 of every subset: fixed weights, so full sums minus the own term."""
+    w = 1.0 / v
+
+    def loo(p: int, q: int) -> np.ndarray:
+        term = w**p * y**q
+        return term.sum() - term
+
+    sw = loo(1, 0)
+    mu = loo(1, 1) / sw
+    w2_r2 = loo(2, 2) - 2.0 * mu * loo(2, 1) + mu * mu * loo(2, 0)
+    return 0.5 * (w2_r2 - (sw - loo(2, 0) / sw))
+
+
 def _reml_tau2(y: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, bool]:
-    """REML tau2 of every leave-one-out subset: the safeguarded Newton iteration, vectorised."""
+    """REML tau2 of every leave-one-out subset: the safeguarded Newton iteration, vectorised.
+
+    Each subset runs the iteration of :func:`~takeup.pipeline.stats.meta_analysis.meta._tau2_reml`
+    (bracket, Newton or Fisher step, bisection when a step leaves the bracket, the same stopping
+    rule), started at the REML tau2 of all sites rather than at the subset's DerSimonian-Laird
+    value: leaving one site out moves tau2 little, so two or three steps suffice.  The root is the
+    same; only the path to it differs.
+    """
     k = y.size
     scale = (v.sum() - v) / (k - 1)                 # mean within variance of each subset
-    start = _dl_tau2(y, v)
+    w = 1.0 / v
+    mu_fe = np.dot(w, y) / w.sum()
+    full, _, _ = _tau2_reml(y, v, _tau2_dl(y, v, float(np.dot(w, (y - mu_fe) ** 2))))
+    boundary = _score_at_zero(y, v) <= 0.0           # score <= 0 at 0: the maximum is on the boundary
     out = np.zeros(k)
     converged = True
     block = max(1, _BLOCK_CELLS // k)
     for b0 in range(0, k, block):
         rows = np.arange(b0, min(k, b0 + block))
-        score0, _, _ = _reml_scores(y, v, np.zeros(rows.size), rows)
-        active = score0 > 0.0                        # score <= 0 at 0: the maximum is on the boundary
-        tau2 = np.where(active, np.maximum(0.0, start[rows]), 0.0)
+        active = ~boundary[rows]
+        tau2 = np.where(active, max(0.0, float(full)), 0.0)
         lo = np.zeros(rows.size)
         hi = np.full(rows.size, np.inf)
         result = np.zeros(rows.size)
@@ -141,15 +174,16 @@ def leave_one_out_fits(y: np.ndarray, v: np.ndarray, method: str) -> tuple[np.nd
     -----
     With ``k = 2`` each subset holds one site and ``combine``'s one-site conventions apply
     (tau2 undefined): the loop is used.  The vectorised forms work on the effects centred at their
-    median and scaled by the root median variance (as ``combine`` does per fit), then map back.
+    fixed-effect mean and scaled by the root median variance (``combine`` centres each fit at its
+    median; the fits are location-scale equivariant), then map back.
     """
     y = np.asarray(y, dtype=float)
     v = np.asarray(v, dtype=float)
     k = y.size
     if k <= 2 or method == "pm":
         return _loop(y, v, method)
-    shift = float(np.median(y))
     unit = float(np.sqrt(np.median(v)))
+    shift = float(np.dot(1.0 / v, y) / np.sum(1.0 / v))   # fixed-effect mean: every subset's mean is near 0
     ys, vs = (y - shift) / unit, v / unit**2
     converged = True
     if method == "fixed":
