@@ -98,18 +98,27 @@ def child_point(n: int, workdir: str) -> None:
                              for v in files.values() for f in v)
     out["rss_after_ingest"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     shutil.rmtree(work / "files")
+    # the first run on a new warehouse computes every drift-chart limit; the next run (a weekly run)
+    # reads them from drift_limits: both are timed, the second is the steady state
+    t = time.perf_counter()
+    summary = run_monitoring(wh, as_of=rb.AS_OF)
+    out["first_run_s"] = time.perf_counter() - t
+    out["first_run_timings"] = summary.timings
     t = time.perf_counter()
     summary = run_monitoring(wh, as_of=rb.AS_OF)
     out["run_s"] = time.perf_counter() - t
-    out["run_timings"] = summary.timings if hasattr(summary, "timings") else {}
+    out["run_timings"] = summary.timings
     out["warehouse_bytes"] = dir_bytes(wh)
     con = duckdb.connect(str(wh), read_only=True, config={"memory_limit": os.environ.get("TAKEUP_MEMORY_LIMIT",
                                                                                          "1200MB")})
     try:
-        t = time.perf_counter()
-        naive = con.execute(NAIVE_SQL, {"as_of": rb.AS_OF, "outcome": rb.OUTCOME, "lo": rb.FOLLOW_MIN,
-                                        "hi": rb.FOLLOW_MAX}).df()
-        out["naive_s"] = time.perf_counter() - t
+        times = []
+        for _ in range(2):          # the floor is the faster of two
+            t = time.perf_counter()
+            naive = con.execute(NAIVE_SQL, {"as_of": rb.AS_OF, "outcome": rb.OUTCOME, "lo": rb.FOLLOW_MIN,
+                                            "hi": rb.FOLLOW_MAX}).df()
+            times.append(time.perf_counter() - t)
+        out["naive_s"] = min(times)
         t = time.perf_counter()
         con.execute("SELECT site_id, arm, count(*) FROM assignments GROUP BY ALL").fetchall()
         out["scan_s"] = time.perf_counter() - t
@@ -268,25 +277,29 @@ def render_table(res: dict) -> str:
     ten = next((pt for pt in pts if pt["n"] == 10_000_000), None)
     if ten:
         ratio = ten["run_s"] / ten["naive_s"]
-        lines.append(f"| Whole in-process `takeup run` (run_monitoring) on 10M participants, 1,000 sites "
-                     f"| {ten['run_s']:.1f} s | | |")
-        lines.append(f"| Naive hand-written 3-table join + GROUP BY site, arm over the same warehouse "
+        lines.append(f"| Naive hand-written 3-table join + GROUP BY site, arm over the same warehouse (faster of two) "
                      f"| {ten['naive_s']:.1f} s (bare scan of assignments {ten['scan_s']:.2f} s) | | |")
-        lines.append(f"| run / naive join (same results: {'yes' if ten['same_results'] else 'NO'}) "
+        if "first_run_s" in ten:
+            first = ten["first_run_s"] / ten["naive_s"]
+            lines.append(f"| First `takeup run` on the new warehouse (run_monitoring, 10M participants, 1,000 sites; "
+                         f"computes every drift-chart limit) | {ten['first_run_s']:.1f} s = {first:.2f}x the naive join "
+                         f"(of which trends {ten['first_run_timings'].get('trends', float('nan')):.1f} s) "
+                         f"| <= 0.5x | {met(first <= 0.5)} |")
+        lines.append(f"| Next (weekly) `takeup run`: drift-chart limits read from `drift_limits` "
+                     f"| {ten['run_s']:.1f} s | | |")
+        lines.append(f"| next run / naive join (same results: {'yes' if ten['same_results'] else 'NO'}) "
                      f"| {ratio:.2f}x | <= 0.5x | {met(ratio <= 0.5 and ten['same_results'])} |")
         tm = ten.get("run_timings", {})
         if tm:
             stages = ", ".join(f"{k} {v:.2f}" for k, v in tm.items())
-            lines.append(f"| of which the run's stages (s) | {stages} | | |")
+            lines.append(f"| of which the next run's stages (s) | {stages} | | |")
             lines.append(f"| the run's reading (`collect_inputs`, incl. the state check) / naive join "
                          f"| {tm['collect_inputs'] / ten['naive_s']:.2f}x | (info) | |")
-            rest = ten["run_s"] - tm.get("trends", 0.0)
-            lines.append(f"| the run without the `trends` stage (CUSUM design) / naive join "
-                         f"| {rest / ten['naive_s']:.2f}x | (info) | |")
     for pt in pts:
         tm = pt.get("run_timings", {})
+        first = f"{pt['first_run_s']:.1f} s first, " if "first_run_s" in pt else ""
         lines.append(f"| Scaling, {pt['n']:,} participants ({pt['sites']:,} sites): ingestion / run (of which reading, "
-                     f"trends) / naive join / peak RSS / warehouse | {pt['ingest_s']:.1f} s / {pt['run_s']:.1f} s "
+                     f"trends) / naive join / peak RSS / warehouse | {pt['ingest_s']:.1f} s / {first}{pt['run_s']:.1f} s "
                      f"({tm.get('collect_inputs', float('nan')):.1f} s, {tm.get('trends', float('nan')):.1f} s) / "
                      f"{pt['naive_s']:.1f} s / {pt['child_peak_rss'] / 2**30:.2f} GiB / "
                      f"{pt['warehouse_bytes'] / 2**30:.2f} GiB | | |")

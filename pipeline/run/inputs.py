@@ -23,6 +23,7 @@ from takeup.pipeline.run.drift_limits import load_limits
 from takeup.pipeline.run.adjusted_sql import AdjustedMoments, adjusted_moments
 from takeup.pipeline.run.strata_sql import collect_strata
 from takeup.pipeline.run.sample_sql import (SampleSpec, build_participants, cluster_moments, covariate_cells,
+                                            site_outcome_period_moments,
                                             drop_sample, outcome_names, site_outcome_moments)
 from takeup.schemas.config import StudyConfig
 
@@ -191,14 +192,17 @@ def _period_starts(index: pd.Series, origin: date, period: int) -> pd.Series:
         "datetime64[us]")
 
 
-def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date | None
-                  ) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Cohort counts per site x arm x period and the calendar basis, in two scans of the participants.
+def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date | None,
+                  cohort_periods: pd.DataFrame | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Cohort counts per site x arm x period and the calendar basis.
 
-    The cohort query gives each period's assignments, uptake reports and uptakes; the calendar
-    basis needs in addition the per-period counts of first uptake reports and first reports of
-    uptake (one more scan), cumulated over the (small) period grid: no participant x period join.
-    Periods are grouped by their integer index and turned into dates on the small result.
+    The cohort counts are each period's assignments, uptake reports and uptakes: taken from
+    ``cohort_periods`` when the run already has them (the per-period moments of one outcome,
+    :func:`~takeup.pipeline.run.sample_sql.site_outcome_period_moments`), otherwise from one scan
+    of the participants.  The calendar basis needs in addition the per-period counts of first
+    uptake reports and first reports of uptake (one more scan), cumulated over the (small) period
+    grid: no participant x period join.  Periods are grouped by their integer index and turned
+    into dates on the small result.
     """
     period = ctx.config.trends.period_days
     cols = ["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"]
@@ -206,12 +210,21 @@ def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date 
         empty = pd.DataFrame(columns=cols)
         return empty, empty.copy()
     params = {"origin": origin, "period_days": period}
-    cohort = con.execute(f"""
-        SELECT site_id, z, {_period_index_sql('assigned_on')} AS period_index,
-               count(*) AS n_assigned, count(*) FILTER (WHERE uptake_observed) AS n_observed,
-               CAST(sum(d) AS BIGINT) AS n_taken_up
-        FROM _participants GROUP BY ALL ORDER BY ALL
-    """, params).df()
+    if cohort_periods is not None:
+        cohort = pd.DataFrame({
+            "site_id": cohort_periods["site_id"], "z": cohort_periods["z"].astype("int32"),
+            "period_index": cohort_periods["period_index"],
+            "n_assigned": cohort_periods["n_assigned"].astype("int64"),
+            "n_observed": cohort_periods["n_uptake_observed"].astype("int64"),
+            "n_taken_up": cohort_periods["sum_d_assigned"].round().astype("int64")})
+        cohort = cohort.sort_values(["site_id", "z", "period_index"]).reset_index(drop=True)
+    else:
+        cohort = con.execute(f"""
+            SELECT site_id, z, {_period_index_sql('assigned_on')} AS period_index,
+                   count(*) AS n_assigned, count(*) FILTER (WHERE uptake_observed) AS n_observed,
+                   CAST(sum(d) AS BIGINT) AS n_taken_up
+            FROM _participants GROUP BY ALL ORDER BY ALL
+        """, params).df()
     cohort.insert(2, "period_start", _period_starts(cohort.pop("period_index"), origin, period))
     firsts = con.execute(f"""
         SELECT site_id, z, {_period_index_sql('first_obs')} AS period_index, 0 AS n_assigned, count(*) AS n_observed,
@@ -322,11 +335,15 @@ def collect_aggregates(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> RunIn
     build_participants(con, spec, outcomes)
     try:
         sites = tuple(r[0] for r in con.execute("SELECT DISTINCT site_id FROM _participants ORDER BY 1").fetchall())
-        moments = site_outcome_moments(con)
+        origin = _cohort_origin(con, ctx)
+        if outcomes and origin is not None:      # moments and cohort counts from one scan of the sample
+            moments, per_period = site_outcome_period_moments(con, origin, config.trends.period_days)
+            cohort, calendar = _trend_counts(con, ctx, origin, per_period[per_period.outcome == outcomes[0]])
+        else:
+            moments = site_outcome_moments(con)
+            cohort, calendar = _trend_counts(con, ctx, origin)
         clusters = cluster_moments(con) if config.randomisation_unit == "cluster" else None
         cells = covariate_cells(con, spec, list(config.covariates))
-        origin = _cohort_origin(con, ctx)
-        cohort, calendar = _trend_counts(con, ctx, origin)
         cluster_cohort = (_cluster_cohort_counts(con, ctx, origin) if config.randomisation_unit == "cluster"
                           else None)
         activity = _site_activity(con, ctx)

@@ -95,7 +95,7 @@ def _build_from_records(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcom
     first_obs, first_yes — the first uptake report and the first report of uptake, for the
     calendar trends).
     ``_sample``: one row per assigned participant x outcome (site_id, cluster_id, z, d,
-    uptake_observed, in_uptake, outcome_due, outcome, y).
+    uptake_observed, in_uptake, outcome_due, outcome, y, assigned_on).
 
     Joins use ``participant_key`` alone: the pseudonym already encodes the site.
     """
@@ -125,7 +125,7 @@ def _build_from_records(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcom
     if not outcomes:
         con.execute(f"CREATE OR REPLACE TEMP TABLE {sample} AS SELECT site_id, participant_key, cluster_id, z, d, "
                     "uptake_observed, in_uptake, outcome_due, CAST(NULL AS VARCHAR) AS outcome, "
-                    f"CAST(NULL AS DOUBLE) AS y FROM {participants} WHERE FALSE")
+                    f"CAST(NULL AS DOUBLE) AS y, assigned_on FROM {participants} WHERE FALSE")
         return
     con.execute(f"""
         CREATE OR REPLACE TEMP TABLE {sample} AS
@@ -138,7 +138,7 @@ def _build_from_records(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcom
             GROUP BY t.participant_key, t.outcome
         ), names AS (SELECT unnest($outcomes) AS outcome)
         SELECT a.site_id, a.participant_key, a.cluster_id, a.z, a.d, a.uptake_observed, a.in_uptake,
-               a.outcome_due, names.outcome, o.y
+               a.outcome_due, names.outcome, o.y, a.assigned_on
         FROM {participants} a CROSS JOIN names
         LEFT JOIN o ON o.participant_key = a.participant_key AND o.outcome = names.outcome
     """, {**(spec.params() if fo else {"as_of": spec.as_of}), "min_days": spec.min_days,
@@ -168,7 +168,7 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
     first_obs, first_yes — the first uptake report and the first report of uptake, for the
     calendar trends).
     ``_sample``: one row per assigned participant x outcome (site_id, participant_key, cluster_id, z, d,
-    uptake_observed, in_uptake, outcome_due, outcome, y).
+    uptake_observed, in_uptake, outcome_due, outcome, y, assigned_on).
 
     When ``participant_state`` is current for the run's follow-up basis, they are views over
     it: the participants whose records all lie within the cutoffs are read from the state (one
@@ -206,7 +206,7 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
                     "CASE WHEN s.first_yes IS NOT NULL THEN greatest(s.first_yes, s.assigned_on) END AS first_yes "
                     f"{exact} AND s.slot = 0")
     sample = ("SELECT s.site_id, s.participant_key, s.cluster_id, CAST(s.z AS INTEGER) AS z, "
-              f"{common}, s.outcome, s.y {exact}" + ("" if outcomes else " AND FALSE"))
+              f"{common}, s.outcome, s.y, s.assigned_on {exact}" + ("" if outcomes else " AND FALSE"))
     mode = "state"
     if n_inexact:
         _build_from_records(con, spec, outcomes, keys="_inexact", participants="_participants_re",
@@ -217,6 +217,24 @@ def build_participants(con: duckdb.DuckDBPyConnection, spec: SampleSpec, outcome
     con.execute(f"CREATE TEMP VIEW _participants AS {participants}")
     con.execute(f"CREATE TEMP VIEW _sample AS {sample}")
     return mode
+
+
+#: the sums of :func:`site_outcome_moments` (SQL expressions over ``_sample``), in output order
+_MOMENT_SUMS = (
+    ("n_assigned", "count(*)"),
+    ("sum_d_assigned", "sum(d)"),
+    ("n_uptake_observed", "count(*) FILTER (WHERE uptake_observed)"),
+    ("n_first_stage", "count(*) FILTER (WHERE in_uptake)"),
+    ("sum_d_first_stage", "coalesce(sum(d) FILTER (WHERE in_uptake), 0)"),
+    ("n_due", "count(*) FILTER (WHERE outcome_due)"),
+    ("n_measured", "count(y)"),
+    ("n", "count(y) FILTER (WHERE in_uptake)"),
+    ("sum_d", "coalesce(sum(d) FILTER (WHERE y IS NOT NULL AND in_uptake), 0)"),
+    ("sum_y", "coalesce(sum(y) FILTER (WHERE in_uptake), 0)"),
+    ("sum_dd", "coalesce(sum(d * d) FILTER (WHERE y IS NOT NULL AND in_uptake), 0)"),
+    ("sum_yy", "coalesce(sum(y * y) FILTER (WHERE in_uptake), 0)"),
+    ("sum_dy", "coalesce(sum(d * y) FILTER (WHERE in_uptake), 0)"),
+)
 
 
 def site_outcome_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
@@ -230,23 +248,38 @@ def site_outcome_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
     outcomes); ``n_uptake_observed`` counts those with an uptake report;
     ``n_due`` those due an outcome and ``n_measured`` those with a measurement.
     """
-    return con.execute("""
-        SELECT site_id, outcome, z,
-               count(*) AS n_assigned,
-               sum(d) AS sum_d_assigned,
-               count(*) FILTER (WHERE uptake_observed) AS n_uptake_observed,
-               count(*) FILTER (WHERE in_uptake) AS n_first_stage,
-               coalesce(sum(d) FILTER (WHERE in_uptake), 0) AS sum_d_first_stage,
-               count(*) FILTER (WHERE outcome_due) AS n_due,
-               count(y) AS n_measured,
-               count(y) FILTER (WHERE in_uptake) AS n,
-               coalesce(sum(d) FILTER (WHERE y IS NOT NULL AND in_uptake), 0) AS sum_d,
-               coalesce(sum(y) FILTER (WHERE in_uptake), 0) AS sum_y,
-               coalesce(sum(d * d) FILTER (WHERE y IS NOT NULL AND in_uptake), 0) AS sum_dd,
-               coalesce(sum(y * y) FILTER (WHERE in_uptake), 0) AS sum_yy,
-               coalesce(sum(d * y) FILTER (WHERE in_uptake), 0) AS sum_dy
-        FROM _sample GROUP BY site_id, outcome, z ORDER BY site_id, outcome, z
-    """).df()
+    sums = ", ".join(f"{expr} AS {name}" for name, expr in _MOMENT_SUMS)
+    return con.execute(f"SELECT site_id, outcome, z, {sums} FROM _sample "
+                       "GROUP BY site_id, outcome, z ORDER BY site_id, outcome, z").df()
+
+
+def site_outcome_period_moments(con: duckdb.DuckDBPyConnection, origin, period_days: int
+                                ) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """:func:`site_outcome_moments` and, from the same scan, the counts per assignment period.
+
+    One pass over ``_sample`` grouped by site x outcome x arm x period (the period of the
+    assignment date, counted in ``period_days`` from ``origin``); the site-level moments are the
+    sums over periods (exact for the counts; the float sums are added in another order than one
+    ``GROUP BY`` would, a difference of the order of 1e-16 relative).  ``_sample`` holds every
+    assigned participant once per outcome, so the per-period rows of any one outcome carry the
+    cohort counts.
+
+    Returns
+    -------
+    moments : DataFrame
+        As :func:`site_outcome_moments`.
+    periods : DataFrame
+        site_id, outcome, z, period_index and the same sums, per period.
+    """
+    sums = ", ".join(f"{expr} AS {name}" for name, expr in _MOMENT_SUMS)
+    periods = con.execute(f"""
+        SELECT site_id, outcome, z, (assigned_on - CAST($origin AS DATE)) // $period_days AS period_index, {sums}
+        FROM _sample GROUP BY ALL
+    """, {"origin": origin, "period_days": period_days}).df()
+    names = [n for n, _ in _MOMENT_SUMS]
+    moments = (periods.groupby(["site_id", "outcome", "z"], sort=True, as_index=False)[names].sum()
+               .reset_index(drop=True))
+    return moments, periods
 
 
 def cluster_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:

@@ -55,16 +55,15 @@ def _previous(frame: pd.DataFrame, keys: list[str], wanted: list[tuple], columns
     if frame is None or frame.empty:
         return out
     index = {tuple(k): i for i, k in enumerate(frame[keys].itertuples(index=False, name=None))}
-    for j, key in enumerate(wanted):
-        i = index.get(key)
-        if i is None:
-            continue
-        for c in columns:
-            v = frame[c].iloc[i]
-            if c == "cs_cace_set":
-                out[c][j] = v if isinstance(v, str) else None
-            else:
-                out[c][j] = float(v) if v is not None and pd.notna(v) else np.nan
+    pos = np.array([index.get(key, -1) for key in wanted], dtype=np.int64)
+    found = pos >= 0
+    for c in columns:
+        if c == "cs_cace_set":
+            values = frame[c].to_numpy(dtype=object)[pos[found]]
+            out[c][found] = [v if isinstance(v, str) else None for v in values]
+        else:
+            values = pd.to_numeric(frame[c], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+            out[c][found] = values[pos[found]]
     return out
 
 
