@@ -255,14 +255,18 @@ def site_outcome_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 def site_outcome_period_moments(con: duckdb.DuckDBPyConnection, origin, period_days: int
                                 ) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """:func:`site_outcome_moments` and, from the same scan, the counts per assignment period.
+    """:func:`site_outcome_moments` and, from the same scan, the sums per assignment period.
 
     One pass over ``_sample`` grouped by site x outcome x arm x period (the period of the
-    assignment date, counted in ``period_days`` from ``origin``); the site-level moments are the
-    sums over periods (exact for the counts; the float sums are added in another order than one
-    ``GROUP BY`` would, a difference of the order of 1e-16 relative).  ``_sample`` holds every
-    assigned participant once per outcome, so the per-period rows of any one outcome carry the
-    cohort counts.
+    assignment date, counted in ``period_days`` from ``origin``) and by the participant's flags
+    (D, in the uptake sample, uptake reported, outcome due, outcome measured), with only three
+    aggregates per group: the count and the sums of Y and Y².  Every sum of
+    :func:`site_outcome_moments` is a sum of these over the flag groups it selects, because D
+    is 0 or 1 (so ``sum(D) = count`` over D = 1, ``sum(D²) = sum(D)``, ``sum(DY) = sum(Y)``
+    over D = 1); three aggregates instead of thirteen make the scan about a third faster.
+    ``_sample`` holds every assigned participant once per outcome, so the per-period rows of
+    any one outcome carry the cohort counts.  The counts are exact; the float sums are added in
+    another order than one ``GROUP BY`` would (differences of the order of 1e-16 relative).
 
     Returns
     -------
@@ -271,15 +275,36 @@ def site_outcome_period_moments(con: duckdb.DuckDBPyConnection, origin, period_d
     periods : DataFrame
         site_id, outcome, z, period_index and the same sums, per period.
     """
-    sums = ", ".join(f"{expr} AS {name}" for name, expr in _MOMENT_SUMS)
-    periods = con.execute(f"""
-        SELECT site_id, outcome, z, (assigned_on - CAST($origin AS DATE)) // $period_days AS period_index, {sums}
+    g = con.execute("""
+        SELECT site_id, outcome, z, (assigned_on - CAST($origin AS DATE)) // $period_days AS period_index,
+               CAST(d AS INTEGER) + 2 * CAST(in_uptake AS INTEGER) + 4 * CAST(uptake_observed AS INTEGER)
+                 + 8 * CAST(outcome_due AS INTEGER) + 16 * CAST(y IS NOT NULL AS INTEGER) AS flags,
+               count(*) AS c, coalesce(sum(y), 0) AS sy, coalesce(sum(y * y), 0) AS syy
         FROM _sample GROUP BY ALL
     """, {"origin": origin, "period_days": period_days}).df()
+    flags = g["flags"].to_numpy()
+    d, iu, uo, due, has_y = ((flags >> k) & 1 == 1 for k in range(5))
+    c = g["c"].to_numpy(dtype=np.int64)
+    sy, syy = g["sy"].to_numpy(dtype=float), g["syy"].to_numpy(dtype=float)
+    keys = ["site_id", "outcome", "z", "period_index"]
+    parts = g[keys].copy()
+    parts["n_assigned"] = c
+    parts["sum_d_assigned"] = np.where(d, c, 0).astype(float)
+    parts["n_uptake_observed"] = np.where(uo, c, 0)
+    parts["n_first_stage"] = np.where(iu, c, 0)
+    parts["sum_d_first_stage"] = np.where(iu & d, c, 0).astype(float)
+    parts["n_due"] = np.where(due, c, 0)
+    parts["n_measured"] = np.where(has_y, c, 0)
+    parts["n"] = np.where(has_y & iu, c, 0)
+    parts["sum_d"] = np.where(has_y & iu & d, c, 0).astype(float)
+    parts["sum_y"] = np.where(iu, sy, 0.0)
+    parts["sum_dd"] = parts["sum_d"]
+    parts["sum_yy"] = np.where(iu, syy, 0.0)
+    parts["sum_dy"] = np.where(iu & d, sy, 0.0)
     names = [n for n, _ in _MOMENT_SUMS]
-    moments = (periods.groupby(["site_id", "outcome", "z"], sort=True, as_index=False)[names].sum()
-               .reset_index(drop=True))
-    return moments, periods
+    periods = parts.groupby(keys, sort=True, as_index=False)[names].sum()
+    moments = periods.groupby(["site_id", "outcome", "z"], sort=True, as_index=False)[names].sum()
+    return moments.reset_index(drop=True), periods
 
 
 def cluster_moments(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
