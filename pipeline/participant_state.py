@@ -40,6 +40,7 @@ from datetime import datetime, timezone
 
 import duckdb
 
+from takeup.pipeline.batch_activity import missing_batches, summarise_batches
 from takeup.schemas.ddl import create_table_sql
 from takeup.schemas.records import ParticipantStateRow
 
@@ -178,6 +179,15 @@ def refresh_state(con: duckdb.DuckDBPyConnection, basis: StateBasis) -> str:
     pending = _pending_batches(con)
     same_basis = stored_basis(con) == basis.to_json()
     if same_basis and not pending:
+        missing = missing_batches(con)
+        if missing:                       # a warehouse from before batch_activity: summarised once
+            con.execute("BEGIN TRANSACTION")
+            try:
+                summarise_batches(con, missing)
+                con.execute("COMMIT")
+            except BaseException:
+                con.execute("ROLLBACK")
+                raise
         return "current"
     now = datetime.now(timezone.utc).replace(tzinfo=None)
     con.execute("BEGIN TRANSACTION")
@@ -214,6 +224,7 @@ def refresh_state(con: duckdb.DuckDBPyConnection, basis: StateBasis) -> str:
             con.execute("INSERT INTO warehouse_meta VALUES ('state_basis', $v)", {"v": basis.to_json()})
         con.execute("INSERT INTO participant_state_batches SELECT unnest($b::VARCHAR[]), $t",
                     {"b": pending, "t": now})
+        summarise_batches(con, missing_batches(con))     # the new batches' record dates, for the stale rule
         con.execute("COMMIT")
     except BaseException:
         con.execute("ROLLBACK")

@@ -35,7 +35,7 @@ __all__ = [
     "AssignmentInput", "UptakeInput", "OutcomeInput",
     "AssignmentRow", "AssignmentCovariateRow", "UptakeRow", "OutcomeRow",
     "BatchRow", "QuarantineRow", "StudyConfigRow", "WarehouseMetaRow", "ParticipantStateRow", "StateBatchRow",
-    "MomentsPackageRow", "DriftLimitRow",
+    "MomentsPackageRow", "DriftLimitRow", "BatchActivityRow",
     "INPUT_MODELS", "STORED_MODELS", "STORAGE_TABLES",
 ]
 
@@ -231,6 +231,21 @@ class StateBatchRow(_Strict):
     applied_at: datetime = Field(description="When the batch was applied to the state (UTC).")
 
 
+class BatchActivityRow(_Strict):
+    """Table `batch_activity`: per loaded batch and site, the span of record dates (derived, see below).
+
+    Written when the participant state applies the batch; a run reads it for the stale-site rule
+    instead of scanning every record (`pipeline/batch_activity.py`).  It can be rebuilt from the
+    record tables at any time.
+    """
+
+    batch_id: str = Field(description="Batch identifier (see `batches`).")
+    site_id: str = Field(description="Site identifier.")
+    first_on: date = Field(description="Earliest record date of the site in the batch.")
+    last_on: date = Field(description="Latest record date of the site in the batch.")
+    n_records: int = Field(description="Records of the site in the batch.")
+
+
 class MomentsPackageRow(_Strict):
     """Table `moments_packages`: the moments packages central runs were computed from (for `reproduce`)."""
 
@@ -284,6 +299,7 @@ STORAGE_TABLES: dict[str, type[_Strict]] = {
     "outcome_measurements": OutcomeRow,
     "participant_state": ParticipantStateRow,
     "participant_state_batches": StateBatchRow,
+    "batch_activity": BatchActivityRow,
     "moments_packages": MomentsPackageRow,
     "drift_limits": DriftLimitRow,
 }

@@ -18,6 +18,7 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from takeup.pipeline.batch_activity import site_activity
 from takeup.pipeline.participant_state import basis_for, refresh_state
 from takeup.pipeline.run.drift_limits import load_limits
 from takeup.pipeline.run.adjusted_sql import AdjustedMoments, adjusted_moments
@@ -260,19 +261,7 @@ def _cumulate_calendar(events: pd.DataFrame, origin: date, as_of: date, period: 
 
 
 def _site_activity(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> pd.DataFrame:
-    return con.execute("""
-        WITH ok AS (SELECT batch_id, received_at FROM batches WHERE status = 'loaded' AND received_at <= $cutoff),
-        rec AS (      -- per table, site and batch first (small), then across tables
-            SELECT site_id, batch_id, max(assigned_on) AS d FROM assignments WHERE assigned_on <= $as_of GROUP BY ALL
-            UNION ALL SELECT site_id, batch_id, max(observed_on) FROM uptake_events WHERE observed_on <= $as_of
-            GROUP BY ALL
-            UNION ALL SELECT site_id, batch_id, max(measured_on) FROM outcome_measurements
-            WHERE measured_on <= $as_of GROUP BY ALL
-        )
-        SELECT rec.site_id, max(rec.d) AS last_record_on, max(ok.received_at) AS last_received_at,
-               count(DISTINCT rec.batch_id) AS n_batches
-        FROM rec JOIN ok USING (batch_id) GROUP BY rec.site_id ORDER BY rec.site_id
-    """, {"as_of": ctx.as_of, "cutoff": ctx.data_cutoff}).df()
+    return site_activity(con, ctx.as_of, ctx.data_cutoff)
 
 
 def _previous_alerts(con: duckdb.DuckDBPyConnection, ctx: RunContext) -> tuple[str | None, pd.DataFrame]:
