@@ -157,19 +157,3 @@ def test_outcome_file_with_a_conflict_loads_alone(tmp_path):
         assert r.status == "loaded" and r.reasons == {"conflicting_outcome": 2}, r.message
     finally:
         con.close()
-
-
-@settings(max_examples=60, deadline=None)
-@given(values=st.lists(st.one_of(st.none(), st.text(alphabet=st.one_of(
-    st.sampled_from(" \t\n\x0b\x0c\r\u00a0\u0301\u0600ab"), st.characters(blacklist_categories=("Cs",))), max_size=6)),
-    max_size=20))
-def test_guarded_trim_of_identifiers_equals_trim(values):
-    """The identifier trim that skips ``trim`` when neither end is white space gives what ``trim`` gives."""
-    from takeup.pipeline.ingest.row_checks import _SPACE, _trim_space
-    con = duckdb.connect(":memory:")
-    try:
-        got = con.execute(f"SELECT list({_trim_space('v')} IS NOT DISTINCT FROM trim(v, {_SPACE})) "
-                          "FROM (SELECT unnest($v::VARCHAR[]) AS v)", {"v": values}).fetchone()[0]
-        assert all(got or [])
-    finally:
-        con.close()
