@@ -114,8 +114,8 @@ def test_duplicates_and_conflicts_follow_the_documented_rules(tmp_path_factory, 
 
     Exact duplicates inside a file collapse (``_extra``); a distinct row identical to a stored
     one is a duplicate; another distinct row of the file or a stored row with the same natural
-    key makes it a conflict.  (Assignment files only: see the xfail test below for uptake and
-    outcome files with conflicts.)
+    key makes it a conflict.  (Assignment files; uptake and outcome files with conflicts: the
+    regression test below.)
     """
     kind = "assignment"
     from takeup.pipeline.ingest.batch import NATURAL_KEYS
@@ -145,15 +145,29 @@ def test_duplicates_and_conflicts_follow_the_documented_rules(tmp_path_factory, 
         con.close()
 
 
-@pytest.mark.xfail(strict=True, reason="known bug: quarantining conflicts of an uptake/outcome file loaded alone "
-                   "refers to assignment_probability, so the whole file is rejected")
-def test_outcome_file_with_a_conflict_loads_alone(tmp_path):
-    path = tmp_path / "outcome.csv"
-    path.write_text("site_id,participant_id,outcome,measured_on,value\n"
-                    "S1,P1,score,2026-02-05,1\nS1,P1,score,2026-02-05,2.5\n", encoding="utf-8")
+@pytest.mark.parametrize("kind,header,first,second,reason", [
+    ("outcome", "site_id,participant_id,outcome,measured_on,value", "S1,P1,score,2026-02-05,1",
+     "S1,P1,score,2026-02-05,2.5", "conflicting_outcome"),
+    ("uptake", "site_id,participant_id,observed_on,took_up", "S1,P1,2026-02-05,1", "S1,P1,2026-02-05,0",
+     "conflicting_uptake"),
+])
+def test_uptake_and_outcome_conflicts_are_quarantined_when_a_file_is_loaded_alone(tmp_path, kind, header, first,
+                                                                                  second, reason):
+    """Regression: quarantining the conflicts of an uptake/outcome file loaded alone referred to
+    assignment_probability (a column only assignment files have), so the whole file was rejected
+    with an internal binder error.  Conflicts inside the file and against a stored row."""
     con = _memory_warehouse()
     try:
-        r = ingest_file(con, path, PseudonymKey(b"k", "test"), StudyConfig(), kind="outcome")
-        assert r.status == "loaded" and r.reasons == {"conflicting_outcome": 2}, r.message
+        within = tmp_path / f"{kind}_within.csv"
+        within.write_text(f"{header}\n{first}\n{second}\n", encoding="utf-8")
+        r = ingest_file(con, within, PseudonymKey(b"k", "test"), StudyConfig(), kind=kind)
+        assert r.status == "loaded" and r.reasons == {reason: 2}, r.message
+        stored = tmp_path / f"{kind}_stored.csv"
+        stored.write_text(f"{header}\n{first}\n", encoding="utf-8")
+        assert ingest_file(con, stored, PseudonymKey(b"k", "test"), StudyConfig(), kind=kind).rows_loaded == 1
+        later = tmp_path / f"{kind}_later.csv"
+        later.write_text(f"{header}\n{second}\n", encoding="utf-8")
+        r = ingest_file(con, later, PseudonymKey(b"k", "test"), StudyConfig(), kind=kind)
+        assert r.status == "loaded" and r.reasons == {reason: 1} and r.rows_loaded == 0, r.message
     finally:
         con.close()

@@ -505,10 +505,16 @@ def _flag_probability_conflicts(con, kind: str, plan: ParsePlan) -> None:
     """)
 
 
-def _quarantine_conflicts(con, kind: str, batch_id: str, file_name: str) -> None:
+def _quarantine_conflicts(con, kind: str, plan: ParsePlan, batch_id: str, file_name: str) -> None:
+    """Quarantine the rows :func:`_classify_valid` and :func:`_flag_probability_conflicts` held back.
+
+    Only assignment files with an ``assignment_probability`` column can have probability
+    conflicts (and have that column to show); uptake and outcome files quarantine key conflicts.
+    """
+    has_probability = kind == "assignment" and "assignment_probability" in plan.value_columns
+    value = "CASE WHEN _pconf THEN CAST(assignment_probability AS VARCHAR) END" if has_probability else "NULL"
     con.execute("INSERT INTO quarantine SELECT $b, $f, _row, CASE WHEN _pconf THEN 'assignment_probability' END, "
-                "CASE WHEN _pconf THEN 'conflicting_probability' ELSE $reason END, "
-                "CASE WHEN _pconf THEN CAST(assignment_probability AS VARCHAR) END FROM _valid WHERE _conflict",
+                f"CASE WHEN _pconf THEN 'conflicting_probability' ELSE $reason END, {value} FROM _valid WHERE _conflict",
                 {"b": batch_id, "f": file_name, "reason": _CONFLICT_REASON[kind]})
 
 
@@ -622,7 +628,7 @@ def ingest_file(con: duckdb.DuckDBPyConnection, path: Path | str, key: Pseudonym
                 "string_agg(DISTINCT site_id, ',' ORDER BY site_id) FILTER (WHERE NOT _dup AND NOT _conflict) "
                 "FROM _valid").fetchone()
             if n_conf:
-                _quarantine_conflicts(con, file_kind, batch_id, name)
+                _quarantine_conflicts(con, file_kind, plan, batch_id, name)
             _insert_records(con, file_kind, plan, batch_id)
             quarantined = n_bad + n_conf + len(rejected)
             if n_ok + quarantined + n_dup != rows_read:  # pragma: no cover - invariant guard
