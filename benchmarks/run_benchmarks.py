@@ -9,7 +9,7 @@ Measures, on simulated data (fixed seed; sites x participants per site):
 2. **Estimation** on one participant table (columns site_id, outcome, z, d,
    uptake_observed, y, as the run's ``_sample`` temp table):
 
-   (a) the moment path of the pipeline: ``sample_sql.site_outcome_moments`` (DuckDB
+   (a) the moment path of the pipeline: ``sample_sql.site_outcome_period_moments`` (DuckDB
        aggregation per site x arm) + ``moments_for_outcome`` + ``wald_estimates``
        (analysis sample and first stage) + ``anderson_rubin_set`` + ``tf_interval`` +
        ``complier_outcome_means``;
@@ -326,7 +326,8 @@ def sample_table(con, data: dict, names: list[str]) -> None:
                     "uptake_observed": pa.array(np.ones(n, dtype=bool)),
                     "in_uptake": pa.array(np.ones(n, dtype=bool)),        # every uptake reported
                     "outcome_due": pa.array(np.ones(n, dtype=bool)),      # every participant due an outcome
-                    "y": y})
+                    "y": y,
+                    "assigned_on": pa.array(data["assigned"], type=pa.date32())})
     con.register("_sample_arrow", tbl)
     con.execute("CREATE OR REPLACE TEMP TABLE _sample AS SELECT * FROM _sample_arrow")
     con.unregister("_sample_arrow")
@@ -337,10 +338,11 @@ def estimation_step(con, config) -> tuple[dict, dict]:
     from takeup.pipeline.stats.estimators.complier_means import complier_outcome_means
     from takeup.pipeline.stats.estimators.wald import wald_estimates
     from takeup.pipeline.stats.estimators.weak_iv import anderson_rubin_set, tf_interval
-    from takeup.pipeline.run.sample_sql import moments_for_outcome, site_outcome_moments
+    from takeup.pipeline.run.sample_sql import moments_for_outcome, site_outcome_period_moments
     level = config.estimation.level
+    origin = con.execute("SELECT min(assigned_on) FROM _sample").fetchall()[0][0]
     t0 = time.perf_counter()
-    frame = site_outcome_moments(con)
+    frame, _ = site_outcome_period_moments(con, origin, 7)    # the run's path: moments and cohort counts
     t1 = time.perf_counter()
     sites = sorted(frame.site_id.unique())
     table = moments_for_outcome(frame, OUTCOME, sites)

@@ -226,7 +226,6 @@ def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date 
                    CAST(sum(d) AS BIGINT) AS n_taken_up
             FROM _participants GROUP BY ALL ORDER BY ALL
         """, params).df()
-    cohort.insert(2, "period_start", _period_starts(cohort.pop("period_index"), origin, period))
     firsts = con.execute(f"""
         SELECT site_id, z, {_period_index_sql('first_obs')} AS period_index, 0 AS n_assigned, count(*) AS n_observed,
                0 AS n_taken_up
@@ -235,28 +234,39 @@ def _trend_counts(con: duckdb.DuckDBPyConnection, ctx: RunContext, origin: date 
         SELECT site_id, z, {_period_index_sql('first_yes')}, 0, 0, count(*)
         FROM _participants WHERE first_yes IS NOT NULL GROUP BY ALL
     """, params).df()
-    firsts.insert(2, "period_start", _period_starts(firsts.pop("period_index"), origin, period))
-    events = pd.concat([cohort[cols[:4]].assign(n_observed=0, n_taken_up=0), firsts[cols]], ignore_index=True)
+    index_cols = ["site_id", "z", "period_index", *cols[3:]]
+    events = pd.concat([cohort[index_cols[:4]].assign(n_observed=0, n_taken_up=0), firsts[index_cols]],
+                       ignore_index=True)
     calendar = _cumulate_calendar(events, origin, ctx.as_of, period)
+    cohort.insert(2, "period_start", _period_starts(cohort.pop("period_index"), origin, period))
     return cohort, calendar
 
 
 def _cumulate_calendar(events: pd.DataFrame, origin: date, as_of: date, period: int) -> pd.DataFrame:
-    """Cumulative counts per site x arm on the regular period grid from ``origin`` to ``as_of``."""
+    """Cumulative counts per site x arm on the regular period grid from ``origin`` to ``as_of``.
+
+    ``events`` holds per-period counts by integer ``period_index``; the series are the site x arm
+    pairs with an event on the grid, cumulated along the grid (a series x periods array), and
+    only periods with at least one participant assigned so far are kept.
+    """
     cols = ["site_id", "z", "period_start", "n_assigned", "n_observed", "n_taken_up"]
-    if events.empty:
+    n_grid = (as_of - origin).days // period + 1
+    ev = events[(events["period_index"] >= 0) & (events["period_index"] < n_grid)]
+    if ev.empty:
         return pd.DataFrame(columns=cols)
-    grid = list(pd.date_range(pd.Timestamp(origin), pd.Timestamp(as_of), freq=f"{period}D").date)
-    ev = events.assign(period_start=pd.to_datetime(events.period_start).dt.date)
-    ev = ev[ev.period_start.isin(set(grid))]
-    parts = []
+    pairs = ev[["site_id", "z"]].drop_duplicates().sort_values(["site_id", "z"]).reset_index(drop=True)
+    series = pd.MultiIndex.from_frame(pairs).get_indexer(pd.MultiIndex.from_frame(ev[["site_id", "z"]]))
+    cell = series * n_grid + ev["period_index"].to_numpy(dtype=np.int64)
+    counts = {}
     for col in cols[3:]:
-        wide = ev.pivot_table(index=["site_id", "z"], columns="period_start", values=col, aggfunc="sum",
-                              fill_value=0).reindex(columns=grid, fill_value=0).cumsum(axis=1)
-        parts.append(wide.stack().rename(col))
-    out = pd.concat(parts, axis=1).fillna(0).astype("int64").reset_index()
-    out.columns = cols
-    out = out[out.n_assigned > 0].sort_values(["site_id", "z", "period_start"]).reset_index(drop=True)
+        total = np.bincount(cell, weights=ev[col].to_numpy(dtype=float), minlength=len(pairs) * n_grid)
+        counts[col] = np.cumsum(total.reshape(len(pairs), n_grid), axis=1).round().astype("int64").ravel()
+    grid_dates = [origin + timedelta(days=period * k) for k in range(n_grid)]
+    out = pd.DataFrame({"site_id": np.repeat(pairs["site_id"].to_numpy(), n_grid),
+                        "z": np.repeat(pairs["z"].to_numpy(), n_grid),
+                        "period_start": np.array(grid_dates * len(pairs), dtype=object), **counts})
+    out = out[out["n_assigned"] > 0].reset_index(drop=True)
+    out["site_id"] = out["site_id"].astype(events["site_id"].dtype)
     return out
 
 
