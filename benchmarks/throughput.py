@@ -343,11 +343,14 @@ def plot(res: dict, out: Path) -> None:
         return
     ns = np.array([pt["n"] for pt in pts], float)
     fig, ax = plt.subplots(figsize=(5, 3.2))
-    for key, label in (("ingest_s", "ingestion"), ("run_s", "takeup run"), ("naive_s", "naive join")):
-        ax.loglog(ns, [pt[key] for pt in pts], marker="o", label=label)
+    series = (("ingest_s", "ingestion"), ("first_run_s", "first takeup run (computes drift limits)"),
+              ("run_s", "next takeup run"), ("naive_s", "naive join"))
+    for key, label in series:
+        if all(key in pt for pt in pts):
+            ax.loglog(ns, [pt[key] for pt in pts], marker="o", label=label)
     ax.set_xlabel("participants")
     ax.set_ylabel("seconds")
-    ax.legend(frameon=False)
+    ax.legend(frameon=False, fontsize="small")
     ax.grid(True, which="both", alpha=0.3)
     fig.tight_layout()
     fig.savefig(out)
