@@ -51,7 +51,7 @@ class RunResults:
     uptake_trends: list[dict] | pd.DataFrame = field(default_factory=list)   # a frame from the trends stage
     alerts: list[dict] = field(default_factory=list)
     precision_forecasts: list[dict] = field(default_factory=list)
-    drift: Any = None   # the trends stage's drift charts, read by the alerts stage (not written)
+    drift: Any = None   # the trends stage's drift charts: read by the alerts stage; only their computed limits are written
 
 
 @dataclass(frozen=True)
