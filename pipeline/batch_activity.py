@@ -52,7 +52,7 @@ def summarise_batches(con: duckdb.DuckDBPyConnection, batch_ids: list[str]) -> N
             f"SELECT batch_id, site_id, min({col}) AS first_on, max({col}) AS last_on, count(*) AS n_records "
             f"FROM {table} WHERE batch_id IN (SELECT batch_id FROM _activity_batches) GROUP BY ALL"
             for table, col in _DATES)
-        con.execute(f"DELETE FROM batch_activity WHERE batch_id IN (SELECT batch_id FROM _activity_batches)")
+        con.execute("DELETE FROM batch_activity WHERE batch_id IN (SELECT batch_id FROM _activity_batches)")
         con.execute(f"INSERT INTO batch_activity (batch_id, site_id, first_on, last_on, n_records) "
                     f"SELECT batch_id, site_id, min(first_on), max(last_on), sum(n_records) FROM ({parts}) GROUP BY ALL")
     finally:

@@ -13,7 +13,6 @@ import shutil
 import duckdb
 import numpy as np
 import pandas as pd
-import pytest
 
 from takeup.pipeline.demo import demo_as_of
 from takeup.pipeline.run import drift_limits
